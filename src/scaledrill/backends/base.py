@@ -1,0 +1,71 @@
+"""The collective protocol and the one-process implementation."""
+
+import os
+from datetime import timedelta
+from typing import Protocol
+
+import torch
+
+
+class Collective(Protocol):
+    rank: int
+    size: int
+
+    def all_reduce(self, tensor: torch.Tensor) -> None:
+        """Sum `tensor` in place over all processes."""
+
+    def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
+        """Stack every process's `tensor` (same shape everywhere) along a new dim 0, in rank order."""
+
+    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
+        """Overwrite `tensor` with the copy held by rank `src`."""
+
+    def barrier(self) -> None: ...
+
+    def close(self) -> None: ...
+
+
+class LocalCollective:
+    """One process: every collective is the identity."""
+
+    rank = 0
+    size = 1
+
+    def all_reduce(self, tensor: torch.Tensor) -> None:
+        pass
+
+    def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
+        return tensor.unsqueeze(0).clone()
+
+    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
+        pass
+
+    def barrier(self) -> None:
+        pass
+
+    def close(self) -> None:
+        pass
+
+
+def open_collective(backend: str, timeout_s: float = 60.0) -> Collective:
+    """Join the process group this process was started in.
+
+    The launcher (or torchrun, or mpiexec) sets the environment; a process started
+    by hand with no such environment gets the one-process collective.
+    """
+    if backend == "local":
+        return LocalCollective()
+    if backend == "gloo":
+        from .gloo import GlooCollective
+
+        return GlooCollective(timedelta(seconds=timeout_s))
+    if backend == "mpi":
+        from .mpi import MpiCollective
+
+        return MpiCollective()
+    raise ValueError(f"unknown backend {backend!r}")
+
+
+def running_under_launcher() -> bool:
+    """True inside a process started by torchrun, mpiexec or our own launcher."""
+    return "WORLD_SIZE" in os.environ or "PMI_SIZE" in os.environ or "OMPI_COMM_WORLD_SIZE" in os.environ

@@ -1,0 +1,37 @@
+"""torch.distributed collectives (gloo on CPU; the same code takes NCCL on GPUs).
+
+Rendezvous is `env://`: MASTER_ADDR, MASTER_PORT, RANK and WORLD_SIZE come from
+our launcher or from torchrun. The timeout bounds how long a collective waits
+for a peer that died, so a fault ends the run instead of hanging it.
+"""
+
+from datetime import timedelta
+
+import torch
+import torch.distributed as dist
+
+
+class GlooCollective:
+    def __init__(self, timeout: timedelta):
+        if not dist.is_initialized():
+            dist.init_process_group("gloo", init_method="env://", timeout=timeout)
+        self.rank = dist.get_rank()
+        self.size = dist.get_world_size()
+
+    def all_reduce(self, tensor: torch.Tensor) -> None:
+        dist.all_reduce(tensor)
+
+    def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
+        out = torch.empty((self.size, *tensor.shape), dtype=tensor.dtype)
+        dist.all_gather(list(out.unbind(0)), tensor.contiguous())
+        return out
+
+    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
+        dist.broadcast(tensor, src)
+
+    def barrier(self) -> None:
+        dist.barrier()
+
+    def close(self) -> None:
+        if dist.is_initialized():
+            dist.destroy_process_group()

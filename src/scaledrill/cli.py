@@ -1,0 +1,109 @@
+"""The command line: `scaledrill VERB [overrides]`, each verb one Hydra app."""
+
+import os
+import sys
+from pathlib import Path
+
+import hydra
+from hydra.core.hydra_config import HydraConfig
+
+from .errors import ScaledrillError
+
+CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
+
+VERBS = {
+    "run": "train a recipe on the simulated layout",
+    "recipe": "print the scaled recipe without training",
+    "check": "prove accumulation, virtual workers and processes match the true batch",
+    "replay": "resume a checkpoint with overrides, side by side",
+    "ladder": "run the recipe across growing batch sizes",
+    "forecast": "project step time, time-to-target and cost on a cluster",
+    "report": "render the HTML report of a run directory",
+}
+
+_started = False  # becomes True once a verb's own code runs; Hydra's errors come before
+
+
+def _verb_function(verb: str):
+    if verb == "run":
+        from .runs import run_verb
+
+        return run_verb
+    if verb == "recipe":
+        from .optim.recipe_verb import recipe_verb
+
+        return recipe_verb
+    if verb == "check":
+        from .check import check_verb
+
+        return check_verb
+    if verb == "replay":
+        from .replay import replay_verb
+
+        return replay_verb
+    if verb == "ladder":
+        from .ladder.run import ladder_verb
+
+        return ladder_verb
+    if verb == "forecast":
+        from .forecast_verb import forecast_verb
+
+        return forecast_verb
+    if verb == "report":
+        from .report import report_verb
+
+        return report_verb
+    raise KeyError(verb)
+
+
+def _app(verb: str):
+    function = _verb_function(verb)
+
+    @hydra.main(version_base=None, config_path=CONFIG_DIR, config_name=verb)
+    def app(cfg):
+        global _started
+        _started = True
+        debug = bool(cfg.get("debug", False)) or os.environ.get("SCALEDRILL_DEBUG") == "1"
+        try:
+            result = function(cfg, Path(HydraConfig.get().runtime.output_dir))
+        except ScaledrillError as err:
+            if debug:
+                raise
+            print(f"scaledrill {verb}: error: {err}", file=sys.stderr)
+            raise SystemExit(err.exit_code) from None
+        code = getattr(result, "exit_code", 0) if result is not None else 0
+        if code:
+            raise SystemExit(code)
+
+    return app
+
+
+def usage() -> str:
+    lines = ["usage: scaledrill VERB [key=value ...]   (Hydra overrides; --cfg job, -m work)", ""]
+    lines += [f"  {verb:<9} {text}" for verb, text in VERBS.items()]
+    return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> None:
+    argv = sys.argv[1:] if argv is None else argv
+    if not argv or argv[0] in ("-h", "--help", "help"):
+        print(usage())
+        raise SystemExit(0 if argv else 2)
+    verb, rest = argv[0], argv[1:]
+    if verb not in VERBS:
+        print(f"scaledrill: unknown verb {verb!r}\n\n{usage()}", file=sys.stderr)
+        raise SystemExit(2)
+    if verb == "report" and rest and "=" not in rest[0] and not rest[0].startswith("-"):
+        rest = [f"path={rest[0]}", *rest[1:]]  # `scaledrill report PATH`
+    sys.argv = [f"scaledrill {verb}", *rest]
+    try:
+        _app(verb)()
+    except SystemExit as exit_:
+        # Hydra exits with 1 for composition errors (unknown key, bad type); those are bad input.
+        if exit_.code == 1 and not _started:
+            raise SystemExit(2) from None
+        raise
+
+
+if __name__ == "__main__":
+    main()

@@ -1,0 +1,71 @@
+"""`scaledrill run`: validate, lay out the processes, train, write the run directory.
+
+The run directory (Hydra's output dir) gets `config.yaml` (the resolved config
+every process reads) and, from rank 0, `summary.json`. A directory that already
+holds a finished run is never overwritten.
+"""
+
+import json
+import os
+from pathlib import Path
+
+from omegaconf import OmegaConf
+
+from .backends import open_collective
+from .backends.base import running_under_launcher
+from .backends.launch import check_backend_available, launch
+from .errors import ConfigError
+from .layout import Layout
+from .progress import StepProgress
+from .validate import validate_run
+
+
+def write_json(path: Path, payload: dict) -> None:
+    """Write then rename, so a reader never sees half a file."""
+    tmp = path.with_suffix(path.suffix + ".tmp")
+    tmp.write_text(json.dumps(payload, indent=2, default=float) + "\n")
+    os.replace(tmp, path)
+
+
+def prepare_run_dir(run_dir: Path, cfg) -> None:
+    if (run_dir / "summary.json").exists():
+        raise ConfigError("hydra.run.dir", f"{run_dir} already holds a finished run; choose a new directory", str(run_dir))
+    run_dir.mkdir(parents=True, exist_ok=True)
+    (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
+
+
+def run_as_rank(cfg, run_dir: Path, collective) -> dict:
+    """Train as one process of the run (rank 0 writes the outputs)."""
+    from .engine import run_training
+
+    progress = StepProgress(cfg, enabled=collective.rank == 0 and cfg.train.progress)
+    try:
+        with progress:
+            summary = run_training(cfg, collective, on_step=progress.update)
+    finally:
+        collective.close()
+    if collective.rank == 0:
+        write_json(run_dir / "summary.json", summary)
+    return summary
+
+
+def run_verb(cfg, run_dir: Path) -> dict | None:
+    cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    layout = validate_run(cfg)
+    if running_under_launcher():  # torchrun or mpiexec started us: we are one rank
+        collective = open_collective(layout.backend, cfg.train.timeout_s)
+        if collective.rank == 0:
+            prepare_run_dir(run_dir, cfg)
+        collective.barrier()
+        return run_as_rank(cfg, run_dir, collective)
+    check_backend_available(layout.backend)
+    prepare_run_dir(run_dir, cfg)
+    print(layout.describe())
+    if layout.backend == "local":
+        return run_as_rank(cfg, run_dir, open_collective("local"))
+    launch(run_dir, layout.backend, layout.procs, address=cfg.layout.get("address", "127.0.0.1"))
+    return json.loads((run_dir / "summary.json").read_text())
+
+
+def describe(layout: Layout) -> str:
+    return layout.describe()

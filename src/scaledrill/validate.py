@@ -1,0 +1,50 @@
+"""Check a whole configuration before any process starts.
+
+Each part validates its own keys (layout, optimizer and recipe, sync, telemetry);
+this module only runs them in order and checks the keys of `train`.
+"""
+
+from .errors import ConfigError
+from .layout import Layout
+
+
+def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
+    value = cfg.train[key]
+    low = 0 if allow_zero else 1
+    if not isinstance(value, int) or isinstance(value, bool) or value < low:
+        rule = "must be a whole number >= 0" if allow_zero else "must be a positive whole number"
+        raise ConfigError(f"train.{key}", rule, value)
+
+
+def validate_train(cfg) -> None:
+    _positive_int(cfg, "steps")
+    _positive_int(cfg, "eval_every", allow_zero=True)
+    _positive_int(cfg, "checkpoint_every", allow_zero=True)
+    if not isinstance(cfg.train.seed, int):
+        raise ConfigError("train.seed", "must be a whole number", cfg.train.seed)
+    if cfg.train.tail not in ("drop", "carry"):
+        raise ConfigError("train.tail", "must be drop or carry", cfg.train.tail)
+    if cfg.train.grads not in ("auto", "fused", "vmap", "loop"):
+        raise ConfigError("train.grads", "must be one of auto, fused, vmap, loop", cfg.train.grads)
+    if cfg.train.dtype not in ("float32", "float64"):
+        raise ConfigError("train.dtype", "must be float32 or float64", cfg.train.dtype)
+    timeout = cfg.train.timeout_s
+    if not isinstance(timeout, (int, float)) or isinstance(timeout, bool) or timeout <= 0:
+        raise ConfigError("train.timeout_s", "must be a positive number of seconds", timeout)
+
+
+def validate_run(cfg) -> Layout:
+    """Raise ConfigError naming the first bad key; return the layout when all is well."""
+    layout = Layout.from_config(cfg.layout)
+    validate_train(cfg)
+    from . import optim, sync
+
+    optim.validate(cfg)
+    sync.validate(cfg.sync)
+    try:
+        from .telemetry import validate as validate_telemetry
+    except ImportError:
+        validate_telemetry = None
+    if validate_telemetry is not None:
+        validate_telemetry(cfg.telemetry)
+    return layout
