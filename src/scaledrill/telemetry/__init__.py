@@ -1,0 +1,45 @@
+"""Telemetry: what a run measures about itself, and where it keeps it.
+
+- noise_scale: the gradient noise scale B_simple (McCandlish et al. 2018)
+- layers: per-layer weight, gradient and update norms
+- detectors: divergence detectors (non-finite, loss spike, gradient explosion)
+- store: the SQLite run store and its read-only reader
+- incident: the JSON record written when a detector fires
+
+`validate(cfg.telemetry)` checks every key of the `telemetry` config group.
+"""
+
+import math
+
+from ..errors import ConfigError
+from .detectors import build_detectors, validate_detect
+from .incident import write_incident
+from .layers import layer_stats
+from .noise_scale import NoiseScale
+from .store import RunStore, open_store, read_events, read_layers, read_runs, read_scalars
+
+__all__ = [
+    "NoiseScale", "RunStore", "build_detectors", "layer_stats", "open_store", "read_events",
+    "read_layers", "read_runs", "read_scalars", "validate", "write_incident",
+]
+
+
+def _count(cfg, key: str, default: int, least: int) -> None:
+    value = cfg.get(key, default)
+    if not isinstance(value, int) or isinstance(value, bool) or value < least:
+        raise ConfigError(f"telemetry.{key}", f"must be a whole number of at least {least}", value)
+
+
+def validate(cfg_telemetry) -> None:
+    """Raise ConfigError naming the first bad key of the `telemetry` group."""
+    _count(cfg_telemetry, "layer_every", 10, 0)
+    _count(cfg_telemetry, "flush_every", 50, 1)
+    NoiseScale(decay=cfg_telemetry.get("noise_decay", 0.95))  # checks telemetry.noise_decay
+    validate_detect(cfg_telemetry)
+    incident = cfg_telemetry.get("incident") or {}
+    steps = incident.get("steps", 20)
+    if not isinstance(steps, int) or isinstance(steps, bool) or steps < 1:
+        raise ConfigError("telemetry.incident.steps", "must be a whole number of at least 1", steps)
+    factor = incident.get("factor", 3.0)
+    if isinstance(factor, bool) or not isinstance(factor, (int, float)) or not (math.isfinite(factor) and factor > 1):
+        raise ConfigError("telemetry.incident.factor", "must be a number above 1", factor)

@@ -1,0 +1,184 @@
+"""Divergence detectors: small watchers that say why a run has gone wrong.
+
+Protocol: `observe(step, scalars) -> reason | None`, plus `state_dict` /
+`load_state_dict` so a resumed run keeps its trailing windows. A detector holds
+its own counter of firings and never prints; the engine decides what to do
+(`telemetry.on_trigger`: stop, or continue after writing an incident record).
+
+- NonFinite: the loss or the gradient norm is NaN or infinite.
+- LossSpike: the loss sits more than `threshold` robust standard deviations
+  above the median of a trailing window. The spread is the median absolute
+  deviation times 1.4826, which equals the standard deviation for Gaussian noise
+  (Rousseeuw and Croux 1993, "Alternatives to the Median Absolute Deviation").
+  Median and MAD ignore the occasional bad batch that a mean and standard deviation
+  would absorb. One-sided: a falling loss never fires.
+- GradExplosion: the gradient norm exceeds `factor` times its trailing median.
+
+Tuning: the defaults (z > 6 over 50 steps, norm > 10× median) are common practice
+for catching real blow-ups while staying quiet on ordinary mini-batch noise; lower
+them to catch slower drifts at the price of false alarms.
+"""
+
+import math
+import statistics
+from dataclasses import dataclass, field
+from typing import Protocol
+
+from ..errors import ConfigError
+
+MAD_TO_SIGMA = 1.4826  # 1 / Φ⁻¹(3/4): MAD of a Gaussian times this is its σ
+
+
+class Detector(Protocol):
+    fired: int
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None: ...
+
+    def state_dict(self) -> dict: ...
+
+    def load_state_dict(self, state: dict) -> None: ...
+
+
+@dataclass
+class NonFinite:
+    keys: tuple[str, ...] = ("loss", "grad_norm")
+    fired: int = 0
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        for key in self.keys:
+            value = scalars.get(key)
+            if value is not None and not math.isfinite(value):
+                self.fired += 1
+                return f"{key} is {value} at step {step}"
+        return None
+
+    def state_dict(self) -> dict:
+        return {"fired": self.fired}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.fired = state["fired"]
+
+
+@dataclass
+class _Trailing:
+    """A trailing window of finite values of one scalar; the base of both window detectors."""
+
+    key: str = "loss"
+    window: int = 50
+    min_history: int = 20
+    history: list[float] = field(default_factory=list)
+    fired: int = 0
+
+    def _push(self, value: float) -> None:
+        self.history.append(value)
+        del self.history[: -self.window]
+
+    def _ready(self, value) -> bool:
+        return value is not None and math.isfinite(value) and len(self.history) >= self.min_history
+
+    def state_dict(self) -> dict:
+        return {"history": list(self.history), "fired": self.fired}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.history, self.fired = list(state["history"]), state["fired"]
+
+
+@dataclass
+class LossSpike(_Trailing):
+    threshold: float = 6.0
+    rel_floor: float = 1e-3  # spread floor, × |median|: a flat loss must not turn rounding into a spike
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        value = scalars.get(self.key)
+        reason = None
+        if self._ready(value):
+            med = statistics.median(self.history)
+            mad = statistics.median(abs(h - med) for h in self.history)
+            spread = max(MAD_TO_SIGMA * mad, self.rel_floor * abs(med), 1e-12)
+            z = (value - med) / spread
+            if z > self.threshold:
+                self.fired += 1
+                reason = (
+                    f"{self.key} spike at step {step}: {value:.6g} is {z:.1f} robust sigma above "
+                    f"the trailing median {med:.6g} (threshold {self.threshold:g})"
+                )
+        if value is not None and math.isfinite(value):
+            self._push(value)
+        return reason
+
+
+@dataclass
+class GradExplosion(_Trailing):
+    key: str = "grad_norm"
+    factor: float = 10.0
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        value = scalars.get(self.key)
+        reason = None
+        if self._ready(value):
+            med = statistics.median(self.history)
+            if value > self.factor * med:
+                self.fired += 1
+                reason = (
+                    f"{self.key} explosion at step {step}: {value:.6g} is {value / med:.1f}x "
+                    f"the trailing median {med:.6g} (limit {self.factor:g}x)"
+                )
+        if value is not None and math.isfinite(value):
+            self._push(value)
+        return reason
+
+
+DETECT_DEFAULTS = {"nonfinite": True, "spike_z": 6.0, "spike_window": 50, "min_history": 20, "grad_factor": 10.0}
+
+
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _is_count(v) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _detect(cfg_telemetry) -> dict:
+    given = cfg_telemetry.get("detect") or {}
+    unknown = sorted(set(given) - set(DETECT_DEFAULTS))
+    if unknown:
+        raise ConfigError(f"telemetry.detect.{unknown[0]}", f"unknown key; known: {', '.join(DETECT_DEFAULTS)}")
+    return {k: given.get(k, v) for k, v in DETECT_DEFAULTS.items()}
+
+
+def validate_detect(cfg_telemetry) -> None:
+    """Raise ConfigError naming the first bad key of `telemetry.detect` or `telemetry.on_trigger`."""
+    d = _detect(cfg_telemetry)
+    if not isinstance(d["nonfinite"], bool):
+        raise ConfigError("telemetry.detect.nonfinite", "must be true or false", d["nonfinite"])
+    if d["spike_z"] is not None and not (_is_number(d["spike_z"]) and d["spike_z"] > 0):
+        raise ConfigError("telemetry.detect.spike_z", "must be a positive number, or null to turn spikes off", d["spike_z"])
+    if d["grad_factor"] is not None and not (_is_number(d["grad_factor"]) and d["grad_factor"] > 1):
+        raise ConfigError("telemetry.detect.grad_factor", "must be a number above 1, or null to turn it off", d["grad_factor"])
+    if not (_is_count(d["min_history"]) and d["min_history"] >= 3):
+        raise ConfigError("telemetry.detect.min_history", "must be a whole number of at least 3", d["min_history"])
+    if not (_is_count(d["spike_window"]) and d["spike_window"] >= d["min_history"]):
+        raise ConfigError(
+            "telemetry.detect.spike_window",
+            f"must be a whole number no smaller than telemetry.detect.min_history={d['min_history']}",
+            d["spike_window"],
+        )
+    on_trigger = cfg_telemetry.get("on_trigger", "stop")
+    if on_trigger not in ("stop", "continue"):
+        raise ConfigError("telemetry.on_trigger", "must be stop or continue", on_trigger)
+
+
+def build_detectors(cfg_telemetry) -> list[Detector]:
+    """The detectors that `telemetry.detect` turns on, in a fixed order (cheapest first)."""
+    validate_detect(cfg_telemetry)
+    d = _detect(cfg_telemetry)
+    out: list[Detector] = []
+    if d["nonfinite"]:
+        out.append(NonFinite())
+    window = {"window": d["spike_window"], "min_history": d["min_history"]}
+    if d["spike_z"] is not None:
+        out.append(LossSpike(threshold=float(d["spike_z"]), **window))
+    if d["grad_factor"] is not None:
+        out.append(GradExplosion(factor=float(d["grad_factor"]), **window))
+    return out

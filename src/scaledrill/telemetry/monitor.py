@@ -1,0 +1,112 @@
+"""What the engine hands telemetry each step, and what telemetry does with it.
+
+The monitor runs in every process, on numbers that are identical in every process
+(global loss, global norms), so all processes agree on when a detector fires and
+stop together. Only rank 0 writes the run store and incident records.
+"""
+
+import math
+from collections import deque
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from .detectors import build_detectors
+from .incident import write_incident
+from .noise_scale import NoiseScale
+from .store import RunStore
+
+
+@dataclass
+class StepRecord:
+    """One optimizer step as telemetry sees it."""
+
+    step: int
+    loss: float
+    lr: float
+    grad_norm: float  # pre-clip norm of the averaged gradient
+    clipped_norm: float  # the norm actually applied
+    small_sq: float | None = None  # mean over workers of |g_w|², when per-worker gradients were at hand
+    big_sq: float | None = None  # |exact average|² on the same step
+    layers: dict | None = None  # per-layer stats, every telemetry.layer_every steps
+    trust: dict | None = None  # per-layer trust ratios (LARS, LAMB)
+    sync: dict = field(default_factory=dict)
+
+    def scalars(self) -> dict[str, float]:
+        out = {"loss": self.loss, "lr": self.lr, "grad_norm": self.grad_norm, "grad_norm_clipped": self.clipped_norm}
+        for key in ("cosine_to_exact", "rel_error_to_exact", "residual_norm", "wire_bytes_per_worker", "compression_ratio"):
+            if key in self.sync:
+                out[key] = float(self.sync[key])
+        return out
+
+
+class Monitor:
+    def __init__(self, cfg, run_dir: Path | None, rank: int, b_small: int, b_big: int, config_yaml: str):
+        tel = cfg.telemetry
+        self.cfg = tel
+        self.run_dir = run_dir
+        self.b_small, self.b_big = b_small, b_big
+        self.noise = NoiseScale(decay=tel.get("noise_decay", 0.95))
+        self.detectors = build_detectors(tel)
+        self.stop_on_trigger = tel.get("on_trigger", "stop") == "stop"
+        keep = (tel.get("incident") or {}).get("steps", 20)
+        self.layer_history: deque = deque(maxlen=max(keep, 50))
+        self.scalar_history: deque = deque(maxlen=max(keep, 50))
+        self.config_yaml = config_yaml
+        self.last_checkpoint: str | None = None
+        self.incidents: list[str] = []
+        self.store = None
+        if rank == 0 and run_dir is not None:
+            self.store = RunStore(run_dir / "run.sqlite", flush_every=tel.get("flush_every", 50))
+            self.store.start("run", config_yaml)
+
+    def observe(self, record: StepRecord) -> str | None:
+        """Log the step; return a detector's reason when one fires and the run should stop."""
+        scalars = record.scalars()
+        if record.small_sq is not None and record.big_sq is not None and self.b_big > self.b_small:
+            self.noise.update(record.small_sq, self.b_small, record.big_sq, self.b_big)
+        scalars.update(self.noise.scalars())
+        scalars["critical_batch"] = scalars["b_simple"]  # B_crit ≈ B_simple (McCandlish et al. 2018)
+        layers = dict(record.layers or {})
+        for name, ratio in (record.trust or {}).items():
+            layers.setdefault(name, {})["trust_ratio"] = float(ratio)
+        self.scalar_history.append((record.step, scalars))
+        if layers:
+            self.layer_history.append((record.step, layers))
+        if self.store is not None:
+            self.store.log_scalars(record.step, scalars)
+            if layers:
+                self.store.log_layers(record.step, layers)
+        reasons = [r for r in (d.observe(record.step, scalars) for d in self.detectors) if r]
+        if not reasons:
+            return None
+        reason = "; ".join(reasons)
+        if self.store is not None:
+            incident = self._incident(record.step, reason)
+            self.store.log_event(record.step, "detector", {"reason": reason, "incident": incident})
+        return reason if self.stop_on_trigger else None
+
+    def _incident(self, step: int, reason: str) -> str:
+        incident = (self.cfg.get("incident") or {})
+        path = write_incident(
+            self.run_dir, step, reason, list(self.layer_history), list(self.scalar_history), self.config_yaml,
+            self.last_checkpoint, keep=incident.get("steps", 20), factor=incident.get("factor", 3.0),
+        )
+        self.incidents.append(str(path))
+        return str(path)
+
+    def summary(self) -> dict:
+        b = self.noise.b_simple
+        return {"noise_scale": None if b is None or not math.isfinite(b) else b, "incidents": self.incidents}
+
+    def state_dict(self) -> dict:
+        return {"noise": self.noise.state_dict(), "detectors": [d.state_dict() for d in self.detectors]}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.noise.load_state_dict(state["noise"])
+        for detector, saved in zip(self.detectors, state["detectors"]):
+            detector.load_state_dict(saved)
+
+    def close(self, status: str) -> None:
+        if self.store is not None:
+            self.store.close(status)
+            self.store = None

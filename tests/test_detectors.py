@@ -1,0 +1,114 @@
+import math
+from pathlib import Path
+
+import numpy as np
+import pytest
+from omegaconf import OmegaConf
+
+from scaledrill.errors import ConfigError
+from scaledrill.telemetry import validate
+from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, build_detectors
+
+DEFAULT_YAML = Path(__file__).parents[1] / "configs" / "telemetry" / "default.yaml"
+
+
+def healthy(steps=1000, seed=0):
+    """A noisy decreasing loss and a noisy gradient norm, as a sound run produces."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(steps)
+    loss = (2.0 * np.exp(-t / 200) + 0.3) * (1 + 0.05 * rng.standard_normal(steps))
+    grad_norm = np.exp(0.3 * rng.standard_normal(steps))  # log-normal spread, median 1
+    return [{"loss": float(a), "grad_norm": float(g)} for a, g in zip(loss, grad_norm)]
+
+
+def run(detector, series):
+    return [(step, r) for step, s in enumerate(series) if (r := detector.observe(step, s)) is not None]
+
+
+@pytest.mark.parametrize("make", [NonFinite, LossSpike, GradExplosion])
+def test_quiet_on_a_healthy_run(make):
+    d = make()
+    assert run(d, healthy()) == []
+    assert d.fired == 0
+
+
+def test_nonfinite_fires_on_nan_loss_and_inf_grad():
+    series = healthy(200)
+    series[123]["loss"] = math.nan
+    series[150]["grad_norm"] = math.inf
+    fired = run(NonFinite(), series)
+    assert [s for s, _ in fired] == [123, 150]
+    assert "loss is nan" in fired[0][1] and "grad_norm is inf" in fired[1][1]
+
+
+def test_loss_spike_fires_on_a_jump():
+    series = healthy(600)
+    series[400]["loss"] *= 3.0
+    fired = run(LossSpike(), series)
+    assert [s for s, _ in fired] == [400]
+
+
+def test_loss_spike_threshold_is_the_robust_z():
+    # 50 steps alternating 1.0 / 1.2, checked only once all 50 are in: median 1.1, MAD 0.1,
+    # robust sigma 0.14826 (MAD × 1.4826 is the Gaussian sigma; Rousseeuw and Croux 1993, from memory).
+    base = [{"loss": 1.0 + 0.2 * (i % 2)} for i in range(50)]
+    sigma = 0.1 * 1.4826
+    below, above = (LossSpike(threshold=6.0, window=50, min_history=50) for _ in range(2))
+    assert run(below, base + [{"loss": 1.1 + 5.9 * sigma}]) == []
+    assert [s for s, _ in run(above, base + [{"loss": 1.1 + 6.1 * sigma}])] == [50]
+
+
+def test_grad_explosion_factor_and_min_history():
+    base = [{"grad_norm": 1.0} for _ in range(30)]
+    assert run(GradExplosion(factor=10.0), base + [{"grad_norm": 9.5}]) == []
+    assert [s for s, _ in run(GradExplosion(factor=10.0), base + [{"grad_norm": 10.5}])] == [30]
+    # Before min_history steps there is no baseline: a huge first value stays quiet.
+    assert run(GradExplosion(min_history=20), base[:19] + [{"grad_norm": 1e6}]) == []
+
+
+def test_state_survives_resume():
+    series = healthy(600)
+    series[400]["loss"] *= 3.0
+    first = LossSpike()
+    run(first, series[:300])
+    resumed = LossSpike()
+    resumed.load_state_dict(first.state_dict())
+    fired = [(s, r) for s, x in enumerate(series) if s >= 300 and (r := resumed.observe(s, x))]
+    assert [s for s, _ in fired] == [400]
+    assert len(resumed.history) == 50  # the window is bounded
+
+
+def test_build_from_the_default_config():
+    cfg = OmegaConf.load(DEFAULT_YAML)
+    validate(cfg)
+    kinds = [type(d) for d in build_detectors(cfg)]
+    assert kinds == [NonFinite, LossSpike, GradExplosion]
+    spike = build_detectors(cfg)[1]
+    assert (spike.threshold, spike.window, spike.min_history) == (6.0, 50, 20)
+
+
+def test_null_disables():
+    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0}})
+    (only,) = build_detectors(cfg)
+    assert isinstance(only, GradExplosion) and only.factor == 5.0
+
+
+@pytest.mark.parametrize(
+    "cfg, key",
+    [
+        ({"detect": {"spike_z": -1.0}}, "telemetry.detect.spike_z"),
+        ({"detect": {"grad_factor": 1.0}}, "telemetry.detect.grad_factor"),
+        ({"detect": {"nonfinite": "yes"}}, "telemetry.detect.nonfinite"),
+        ({"detect": {"spike_window": 10}}, "telemetry.detect.spike_window"),  # below min_history=20
+        ({"detect": {"spike_zz": 3.0}}, "telemetry.detect.spike_zz"),
+        ({"on_trigger": "halt"}, "telemetry.on_trigger"),
+        ({"layer_every": -1}, "telemetry.layer_every"),
+        ({"flush_every": 0}, "telemetry.flush_every"),
+        ({"noise_decay": 1.5}, "telemetry.noise_decay"),
+        ({"incident": {"factor": 0.5}}, "telemetry.incident.factor"),
+    ],
+)
+def test_bad_config_names_the_key(cfg, key):
+    with pytest.raises(ConfigError) as err:
+        validate(OmegaConf.create(cfg))
+    assert err.value.key == key
