@@ -1,0 +1,29 @@
+"""Buckets: the flat vector travels in contiguous pieces of at most `sync.bucket_mib`.
+
+Pieces follow the flat vector as it is (parameter order, not reversed, and not
+cut at parameter edges): the sync runs after the last backward of a step, so
+there is no overlap with backward to win by reversing, and one all-reduce per
+bucket bounds the memory a collective holds while keeping calls few.
+
+Steps, for rows [V, m] of one dtype:
+1. sum the V rows inside the process (in that dtype);
+2. one in-place SUM all-reduce per bucket across the P processes.
+The caller divides by W once.
+"""
+
+import torch
+
+
+def bounds(m: int, itemsize: int, bucket_mib: float) -> list[slice]:
+    """Contiguous slices of at most `bucket_mib` MiB covering range(m)."""
+    per = max(1, int(bucket_mib * 2**20) // itemsize)
+    return [slice(a, min(a + per, m)) for a in range(0, m, per)]
+
+
+def bucketed_sum(rows: torch.Tensor, collective, bucket_mib: float) -> torch.Tensor:
+    """Σ over rows and over processes; identical on every process."""
+    flat = rows.sum(dim=0) if rows.shape[0] > 1 else rows[0].clone()  # 1.
+    if collective.size > 1:
+        for piece in bounds(flat.numel(), flat.element_size(), bucket_mib):  # 2.
+            collective.all_reduce(flat[piece])
+    return flat

@@ -1,0 +1,99 @@
+"""The compressor protocol and the registry that picks one by name.
+
+A compressor is a small init/update pair with its state in a dataclass, in the
+manner of optax's gradient transformations. `update` sees the rows of this
+process's workers at once, because some methods (PowerSGD) need a collective in
+the middle of compressing; it gets those collectives from the `Round`.
+
+The simulator reduces *decompressed* values with a dense all-reduce: the average
+is the one a real cluster would compute, while `Out.wire_bytes` counts what one
+worker would really send in the compressed format (values, indices, scales).
+"""
+
+from dataclasses import dataclass, field
+from typing import Any, Callable, Protocol
+
+import numpy as np
+import torch
+
+
+@dataclass
+class Empty:
+    """State of a compressor that keeps none."""
+
+
+@dataclass
+class Round:
+    """What one step's compression may use.
+
+    `sum` adds rows [V, m] over this process and then over all processes, in the
+    rows' dtype; `mean` is the global average over all `world` workers. Both return
+    [m], identical on every process.
+    """
+
+    step: int
+    workers: range  # global ids of the rows handed to `update`
+    world: int  # W
+    seed: int
+    sum: Callable[[torch.Tensor], torch.Tensor]
+    mean: Callable[[torch.Tensor], torch.Tensor]
+
+    def generator(self, v: int) -> torch.Generator:
+        """Random stream of row v, from (seed, step, global worker id) only, so never from P."""
+        return torch.Generator().manual_seed(mix(self.seed, self.step, self.workers[v]))
+
+
+@dataclass
+class Out:
+    mean: torch.Tensor  # [m] average over all workers of the decompressed values
+    sent: torch.Tensor  # [V, m] what each local worker contributed, decompressed
+    wire_bytes: float  # what one worker sends this step
+    stats: dict[str, float] = field(default_factory=dict)
+
+
+class Compressor(Protocol):
+    per_worker: bool  # needs each worker's own gradient (else a per-process sum will do)
+    lossless: bool  # the average equals the exact one
+
+    def init(self, shapes: list[torch.Size], V: int, seed: int, dtype: torch.dtype) -> Any: ...
+
+    def update(self, x: torch.Tensor, state: Any, rnd: Round) -> tuple[Out, Any]: ...
+
+
+def mix(*words: int) -> int:
+    """A well-spread 63-bit seed from several non-negative integers."""
+    return int(np.random.SeedSequence([int(w) for w in words]).generate_state(1, np.uint64)[0] >> 1)
+
+
+def dense_bytes(n: int, dtype: torch.dtype) -> int:
+    return n * torch.empty((), dtype=dtype).element_size()
+
+
+def build(cfg) -> Compressor:
+    """The compressor named by `cfg.name`, configured from the other keys of `cfg`."""
+    from .cast import Cast
+    from .exact import Exact
+    from .powersgd import PowerSGD
+    from .qsgd import QSGD
+    from .randk import RandK
+    from .sign import ScaledSign
+    from .topk import TopK
+
+    makers = {
+        "exact": lambda c: Exact(),
+        "fp16": lambda c: Cast(Exact(), torch.float16),
+        "bf16": lambda c: Cast(Exact(), torch.bfloat16),
+        "topk": lambda c: TopK(fraction=c.get("fraction", 0.01), count=c.get("count", None)),
+        "randk": lambda c: RandK(
+            fraction=c.get("fraction", 0.01), count=c.get("count", None), unbiased=c.get("unbiased", True)
+        ),
+        "sign": lambda c: ScaledSign(),
+        "qsgd": lambda c: QSGD(levels=c.get("levels", 16)),
+        "powersgd": lambda c: PowerSGD(
+            rank=c.get("rank", 1), start_step=c.get("start_step", 0), min_compression=c.get("min_compression", 1.0)
+        ),
+    }
+    return makers[cfg.get("name", "exact")](cfg)
+
+
+NAMES = ("exact", "fp16", "bf16", "topk", "randk", "sign", "qsgd", "powersgd")

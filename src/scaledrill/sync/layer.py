@@ -1,0 +1,160 @@
+"""The sync layer: per-worker gradients in, the global average out.
+
+Called once per optimizer step with `local`, this process's gradients in
+worker-mean scale (the true gradient is (1/W)·Σ_w g_w):
+- [V, n], one row per hosted worker, when `per_worker` is True;
+- [1, n], the sum over the hosted workers, otherwise (the fused path).
+
+Steps:
+1. compress each worker's row (with error feedback if asked);
+2. sum the decompressed rows in the process, all-reduce per bucket, divide by W;
+3. if `sync.fidelity`, average the same rows exactly (one more sum and
+   all-reduce) and compare.
+The result is identical on every process and does not depend on P.
+"""
+
+import math
+from dataclasses import fields, is_dataclass, replace
+from functools import partial
+
+import torch
+
+from ..errors import ConfigError
+from .buckets import bucketed_sum
+from .compress import NAMES, Round, build, dense_bytes
+from .feedback import ErrorFeedback
+
+DEFAULTS = {
+    "name": "exact",
+    "error_feedback": False,
+    "bucket_mib": 25.0,
+    "fidelity": True,
+    "fraction": 0.01,
+    "count": None,
+    "unbiased": True,
+    "levels": 16,
+    "rank": 1,
+    "start_step": 0,
+    "min_compression": 1.0,
+}
+
+
+def _number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
+def _whole(v) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def validate(cfg) -> None:
+    """Raise ConfigError naming the first `sync.*` key that breaks its rule."""
+    for key in cfg.keys():
+        if key not in DEFAULTS:
+            raise ConfigError(f"sync.{key}", f"unknown key; known: {', '.join(DEFAULTS)}", key)
+    get = lambda k: cfg.get(k, DEFAULTS[k])  # noqa: E731
+    rules = [
+        ("name", get("name") in NAMES, f"must be one of {', '.join(NAMES)}"),
+        ("error_feedback", isinstance(get("error_feedback"), bool), "must be true or false"),
+        ("fidelity", isinstance(get("fidelity"), bool), "must be true or false"),
+        ("unbiased", isinstance(get("unbiased"), bool), "must be true or false"),
+        ("bucket_mib", _number(get("bucket_mib")) and get("bucket_mib") > 0, "must be a number > 0"),
+        ("fraction", _number(get("fraction")) and 0 < get("fraction") <= 1, "must be in (0, 1]"),
+        ("count", get("count") is None or (_whole(get("count")) and get("count") >= 1), "must be null or a whole number >= 1"),
+        ("levels", _whole(get("levels")) and get("levels") >= 1, "must be a whole number >= 1"),
+        ("rank", _whole(get("rank")) and get("rank") >= 1, "must be a whole number >= 1"),
+        ("start_step", _whole(get("start_step")) and get("start_step") >= 0, "must be a whole number >= 0"),
+        ("min_compression", _number(get("min_compression")) and get("min_compression") > 0, "must be a number > 0"),
+    ]
+    for key, ok, rule in rules:
+        if not ok:
+            raise ConfigError(f"sync.{key}", rule, get(key))
+
+
+class SyncLayer:
+    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype):
+        self.compressor, self.layout, self.collective = compressor, layout, collective
+        self.seed, self.bucket_mib, self.fidelity = seed, bucket_mib, fidelity
+        self.n = sum(math.prod(s) for s in shapes)
+        self.state = compressor.init(list(shapes), layout.per_proc, seed, dtype)
+        self.calls = 0
+        self.stats: dict[str, float] = {}
+
+    @property
+    def per_worker(self) -> bool:
+        return self.compressor.per_worker
+
+    def _sum(self, rows: torch.Tensor) -> torch.Tensor:
+        return bucketed_sum(rows, self.collective, self.bucket_mib)
+
+    def _mean(self, rows: torch.Tensor) -> torch.Tensor:
+        return self._sum(rows).div_(self.layout.workers)
+
+    def reduce(self, local: torch.Tensor, workers: range, step: int) -> torch.Tensor:
+        want = len(workers) if self.per_worker else 1
+        if local.dim() != 2 or local.shape[1] != self.n or local.shape[0] not in (want, len(workers)):
+            raise ValueError(f"expected local of shape [{want}, {self.n}], got {tuple(local.shape)}")
+        W = self.layout.workers
+        rnd = Round(step, workers, W, self.seed, self._sum, self._mean)
+        out, self.state = self.compressor.update(local, self.state, rnd)  # 1. and 2.
+        self.calls += 1
+        full = dense_bytes(self.n, local.dtype)
+        stats = {
+            "wire_bytes_per_worker": float(out.wire_bytes),
+            "uncompressed_bytes": float(full),
+            "compression_ratio": full / out.wire_bytes,
+            **out.stats,
+        }
+        if self.fidelity:  # 3.
+            exact = out.mean if self.compressor.lossless else self._mean(local)
+            diff, size = (out.mean - exact).double().norm(), exact.double().norm()
+            stats["cosine_to_exact"] = float(torch.nn.functional.cosine_similarity(out.mean.double(), exact.double(), dim=0))
+            stats["rel_error_to_exact"] = float(diff / size) if size > 0 else float(diff > 0)
+        self.stats = stats
+        return out.mean
+
+    def state_dict(self) -> dict:
+        """Keys "worker.*" hold [V, ...] rows in the order of this process's workers."""
+        return {"calls": self.calls, **_flatten(self.state)}
+
+    def load_state_dict(self, d: dict) -> None:
+        self.calls = int(d["calls"])
+        self.state = _restore(self.state, d)
+
+
+def _flatten(state, prefix: str = "") -> dict:
+    out = {}
+    for f in fields(state):
+        value = getattr(state, f.name)
+        if is_dataclass(value):
+            out.update(_flatten(value, f"{prefix}{f.name}."))
+        elif f.name.startswith("worker_"):
+            out[f"worker.{prefix}{f.name[len('worker_'):]}"] = value
+        else:
+            out[f"{prefix}{f.name}"] = value
+    return out
+
+
+def _restore(state, d: dict, prefix: str = ""):
+    changes = {}
+    for f in fields(state):
+        value = getattr(state, f.name)
+        if is_dataclass(value):
+            changes[f.name] = _restore(value, d, f"{prefix}{f.name}.")
+            continue
+        key = f"worker.{prefix}{f.name[len('worker_'):]}" if f.name.startswith("worker_") else f"{prefix}{f.name}"
+        new = d[key]
+        if isinstance(value, torch.Tensor) and tuple(new.shape) != tuple(value.shape):
+            raise ValueError(f"{key}: shape {tuple(new.shape)} does not match {tuple(value.shape)}")
+        changes[f.name] = new.to(value.dtype).clone() if isinstance(value, torch.Tensor) else new
+    return replace(state, **changes)
+
+
+def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = torch.float32) -> SyncLayer:
+    """The sync layer that `cfg` (the `sync` node) describes, for this layout and model."""
+    validate(cfg)
+    get = lambda k: cfg.get(k, DEFAULTS[k])  # noqa: E731
+    compressor = build(cfg)
+    if get("error_feedback"):
+        compressor = ErrorFeedback(compressor)
+    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype)
