@@ -10,35 +10,28 @@ The engine knows nothing of any one compressor, optimizer or detector: it calls
 their protocols. Every process runs this same loop on its own workers.
 """
 
-import math
+import signal
+import threading
 import time
-from dataclasses import dataclass, field
+from pathlib import Path
 
 import torch
 from omegaconf import OmegaConf
 
+from . import checkpoint
 from .backends import Collective
 from .data.sampler import Sampler
 from .data.tasks import Task, build_task
-from .errors import ConfigError, DataError
+from .errors import ConfigError, DataError, Interrupted
 from .grads import GradComputer, flatten_params, write_grads
 from .layout import Layout
 from .models.ghost_bn import set_group_size
 from .optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
 from .sync import build_sync
+from .telemetry.layers import layer_stats
+from .telemetry.monitor import Monitor, StepRecord
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
-
-
-@dataclass
-class StepRecord:
-    """What one step leaves behind for telemetry and the summary."""
-
-    step: int
-    loss: float
-    lr: float
-    grad_norm: float  # pre-clip norm of the averaged gradient
-    sync: dict = field(default_factory=dict)
 
 
 def _cast_batch(batch: dict, dtype: torch.dtype) -> dict:
@@ -76,7 +69,7 @@ class Trainer:
         self.recipe = resolve_recipe(cfg, self.layout, self.task.data.train.size, cfg.train.tail)
         self.optimizer = build_optimizer(list(self.model.named_parameters()), cfg.optim)
         self.params = [p for p in self.model.parameters()]
-        self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed)
+        self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.path = self._choose_path(cfg.train.grads)
         self.step_index = 0
@@ -112,29 +105,79 @@ class Trainer:
         """Running statistics follow the mean over all W workers (the mean over processes of process means)."""
         if self.comm.size == 1:
             return
-        for name in self.grads.buffer_names:
+        for name in self.grads.float_buffers:
             buf = dict(self.model.named_buffers())[name]
             self.comm.all_reduce(buf)
             buf /= self.comm.size
 
-    def step(self, path: str | None = None) -> StepRecord:
+    def _noise_due(self, step: int) -> bool:
+        every = self.cfg.telemetry.get("noise_every", 25)
+        if self.layout.workers < 2 or not every:
+            return False
+        return self.path != "fused" or step % every == 0  # per-worker paths measure it for free
+
+    def _layers_due(self, step: int) -> bool:
+        every = self.cfg.telemetry.get("layer_every", 10)
+        return bool(every) and step % every == 0
+
+    def step(self) -> StepRecord:
         step = self.step_index
         micro = self._micro_batches(step)
-        count = self._global_count(micro)
-        scale = self.layout.workers / count
-        result = self.grads.compute(micro, scale, path or self.path)
+        scale = self.layout.workers / self._global_count(micro)
+        noise = self._noise_due(step)
+        path = "vmap" if noise and self.path == "fused" else self.path
+        result = self.grads.compute(micro, scale, path)
         average = self.sync.reduce(result.local, self.workers, step)
         self._average_buffers()
 
-        loss = torch.tensor([result.loss_sum], dtype=torch.float64)
-        self.comm.all_reduce(loss)
+        # One small all-reduce for the scalars: the loss and Σ_w |g_w|² (noise scale).
+        flag = getattr(self, "stop_flag", None)
+        scalars = torch.tensor(
+            [result.loss_sum, float(result.local.double().square().sum()) if noise else 0.0, float(bool(flag and flag.raised))],
+            dtype=torch.float64,
+        )
+        self.comm.all_reduce(scalars)
+        W = self.layout.workers
+        small_sq = big_sq = None
+        if noise:
+            small_sq = float(scalars[1]) / W
+            big_sq = float(self._exact_average(result.local, average).double().square().sum())
+
         write_grads(average, self.params)
         grad_norm = clip_by_global_norm(self.params, self.cfg.optim.clip_norm)
+        clip = self.cfg.optim.clip_norm
         lr = self.recipe.lr_at(step)
         set_lr(self.optimizer, lr)
+        layers_due = self._layers_due(step)
+        before = [p.detach().clone() for p in self.params] if layers_due else None
         self.optimizer.step()
+        layers = None
+        if layers_due:
+            updates = [p.detach() - b for p, b in zip(self.params, before)]
+            layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
+        trust = getattr(self.optimizer, "trust_ratios", None)
         self.step_index += 1
-        return StepRecord(step, float(loss) / self.layout.workers, lr, float(grad_norm), dict(self.sync.stats))
+        return StepRecord(
+            step=step,
+            loss=float(scalars[0]) / W,
+            lr=lr,
+            grad_norm=float(grad_norm),
+            clipped_norm=min(float(grad_norm), clip) if clip else float(grad_norm),
+            small_sq=small_sq,
+            big_sq=big_sq,
+            layers=layers,
+            trust=dict(trust) if trust and layers_due else None,
+            sync=dict(self.sync.stats),
+            interrupt=bool(scalars[2] > 0),
+        )
+
+    def _exact_average(self, local: torch.Tensor, average: torch.Tensor) -> torch.Tensor:
+        """The uncompressed average of the same gradients (the sync result itself when sync is exact)."""
+        if self.cfg.sync.name == "exact":
+            return average
+        exact = local.sum(0)
+        self.comm.all_reduce(exact)
+        return exact / self.layout.workers
 
     # -- evaluation ----------------------------------------------------------
     @torch.no_grad()
@@ -164,24 +207,77 @@ class Trainer:
         return float(flatten_params(self.params).double().norm())
 
 
-def run_training(cfg, collective: Collective, on_step=None) -> dict:
-    """Train for cfg.train.steps steps; returns the summary (meaningful on rank 0)."""
+class StopFlag:
+    """Set by SIGINT/SIGTERM; processes agree on it through the step's scalar all-reduce."""
+
+    def __init__(self):
+        self.raised = False
+        self._previous = {}
+
+    def __enter__(self):
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                self._previous[sig] = signal.signal(sig, self._handle)
+        return self
+
+    def _handle(self, signum, frame):
+        self.raised = True
+
+    def __exit__(self, *exc):
+        for sig, handler in self._previous.items():
+            signal.signal(sig, handler)
+        return False
+
+
+def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dict:
+    """Train for cfg.train.steps steps; returns the summary (meaningful on rank 0).
+
+    Checkpoints go to RUN_DIR/checkpoints every train.checkpoint_every steps and at
+    the end; `resume` continues from one. SIGINT/SIGTERM stop every process after
+    the current step, write a checkpoint and raise Interrupted.
+    """
     started = time.perf_counter()
     trainer = Trainer(cfg, collective)
-    steps, every = cfg.train.steps, cfg.train.eval_every
+    layout = trainer.layout
+    monitor = Monitor(cfg, run_dir, collective.rank, layout.micro_batch * layout.accum, layout.global_batch, config_yaml(cfg))
+    if cfg.get("resume"):
+        state = checkpoint.load(cfg.resume)
+        checkpoint.restore(trainer, monitor, state)
+        monitor.last_checkpoint = state["path"]
+    ckpt_dir = Path(run_dir) / "checkpoints" if run_dir is not None else None
+    steps, every, ckpt_every = cfg.train.steps, cfg.train.eval_every, cfg.train.checkpoint_every
     records: list[StepRecord] = []
     evals: dict[int, dict] = {}
-    for _ in range(trainer.step_index, steps):
-        record = trainer.step()
-        records.append(record)
-        last = trainer.step_index == steps
-        if collective.rank == 0 and (last or (every and trainer.step_index % every == 0)):
-            evals[trainer.step_index] = trainer.evaluate()
-        if on_step is not None:
-            on_step(trainer, record)
-        if not math.isfinite(record.loss):
-            break
-    layout = trainer.layout
+    stopped = None
+    status = "failed"
+    first_step = trainer.step_index
+    try:
+        with StopFlag() as flag:
+            trainer.stop_flag = flag
+            for _ in range(trainer.step_index, steps):
+                record = trainer.step()
+                records.append(record)
+                stopped = monitor.observe(record)
+                last = trainer.step_index == steps or stopped is not None or record.interrupt
+                if collective.rank == 0 and (last or (every and trainer.step_index % every == 0)):
+                    evals[trainer.step_index] = trainer.evaluate()
+                if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
+                    saved = checkpoint.save(trainer, monitor, ckpt_dir)
+                    monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
+                if on_step is not None:
+                    on_step(trainer, record)
+                if record.interrupt:
+                    status = "interrupted"
+                    monitor.close(status)
+                    raise Interrupted(
+                        f"stopped by a signal after step {trainer.step_index}; a checkpoint is in {ckpt_dir}; "
+                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)"
+                    )
+                if stopped is not None:
+                    break
+        status = "diverged" if stopped else "finished"
+    finally:
+        monitor.close(status)
     done = trainer.step_index
     summary = {
         "workers": layout.workers,
@@ -194,6 +290,7 @@ def run_training(cfg, collective: Collective, on_step=None) -> dict:
         "task": trainer.task.name,
         "optimizer": cfg.optim.name,
         "steps": done,
+        "resumed_from_step": first_step if cfg.get("resume") else None,
         "samples_seen": done * layout.global_batch,
         "dropped_samples": trainer.sampler.dropped_samples(done),
         "tail": cfg.train.tail,
@@ -202,8 +299,12 @@ def run_training(cfg, collective: Collective, on_step=None) -> dict:
         "eval_history": {str(k): v for k, v in evals.items()},
         "final_params_l2": trainer.params_l2(),
         "peak_lr": trainer.recipe.peak_lr,
+        "diverged": stopped is not None,
+        "stop_reason": stopped,
+        "last_checkpoint": monitor.last_checkpoint,
         "wall_seconds": time.perf_counter() - started,
     }
+    summary.update(monitor.summary())
     summary.update(sync_summary(cfg, records))
     return summary
 

@@ -42,7 +42,9 @@ class GradComputer:
         self.model, self.loss, self.V = model, loss, workers_per_proc
         self.names = [name for name, _ in model.named_parameters()]
         self.params = [p for _, p in model.named_parameters()]
-        self.buffer_names = [name for name, b in model.named_buffers() if b.is_floating_point()]
+        self.buffer_names = [name for name, _ in model.named_buffers()]
+        # Averaged across workers and processes; integer counters are the same everywhere.
+        self.float_buffers = [name for name, b in model.named_buffers() if b.is_floating_point()]
         self.numel = sum(p.numel() for p in self.params)
 
     # -- fused ---------------------------------------------------------------
@@ -69,7 +71,7 @@ class GradComputer:
         named = dict(self.model.named_buffers())
         with torch.no_grad():
             for n, value in batched.items():
-                named[n].copy_(value.mean(0))
+                named[n].copy_(value.mean(0) if value.is_floating_point() else value[0])
 
     def vmap(self, micro: list[dict], scale: float) -> StepGrads:
         params = {n: p.detach() for n, p in zip(self.names, self.params)}
@@ -112,7 +114,7 @@ class GradComputer:
                 ends[n] += named[n].detach()
         with torch.no_grad():
             for n, t in ends.items():
-                named[n].copy_(t / self.V)
+                named[n].copy_(t / self.V if t.is_floating_point() else t // self.V)
         return StepGrads(out, total)
 
     def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:

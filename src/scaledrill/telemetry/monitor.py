@@ -30,6 +30,7 @@ class StepRecord:
     layers: dict | None = None  # per-layer stats, every telemetry.layer_every steps
     trust: dict | None = None  # per-layer trust ratios (LARS, LAMB)
     sync: dict = field(default_factory=dict)
+    interrupt: bool = False  # some process was asked to stop (SIGINT/SIGTERM)
 
     def scalars(self) -> dict[str, float]:
         out = {"loss": self.loss, "lr": self.lr, "grad_norm": self.grad_norm, "grad_norm_clipped": self.clipped_norm}

@@ -1,0 +1,32 @@
+"""Shared helpers: compose configs and run the command line as a user would."""
+
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from hydra import compose, initialize_config_dir
+
+ROOT = Path(__file__).resolve().parents[1]
+CONFIGS = str(ROOT / "configs")
+SCALEDRILL = [sys.executable, "-m", "scaledrill.cli"]
+
+
+def make_config(*overrides: str, name: str = "run"):
+    """The composed config of a verb, as Hydra would build it from the command line."""
+    with initialize_config_dir(CONFIGS, version_base=None):
+        return compose(name, overrides=list(overrides))
+
+
+def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:
+    full_env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", **(env or {}))
+    done = subprocess.run([*SCALEDRILL, *args], capture_output=True, text=True, timeout=timeout, env=full_env, cwd=ROOT)
+    if check and done.returncode != 0:
+        raise AssertionError(f"scaledrill {' '.join(args)} exited {done.returncode}\n{done.stdout}\n{done.stderr}")
+    return done
+
+
+@pytest.fixture
+def config():
+    return make_config
