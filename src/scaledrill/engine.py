@@ -234,7 +234,8 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
 
     Checkpoints go to RUN_DIR/checkpoints every train.checkpoint_every steps and at
     the end; `resume` continues from one. SIGINT/SIGTERM stop every process after
-    the current step, write a checkpoint and raise Interrupted.
+    the current step, write a checkpoint and raise Interrupted. `on_step(trainer,
+    record)` may return True to end the run early (a goal was met).
     """
     started = time.perf_counter()
     trainer = Trainer(cfg, collective)
@@ -249,6 +250,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     records: list[StepRecord] = []
     evals: dict[int, dict] = {}
     stopped = None
+    stopped_early = False
     status = "failed"
     first_step = trainer.step_index
     try:
@@ -264,8 +266,8 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                 if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
                     saved = checkpoint.save(trainer, monitor, ckpt_dir)
                     monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
-                if on_step is not None:
-                    on_step(trainer, record)
+                if on_step is not None and on_step(trainer, record):
+                    stopped_early = True  # the caller's goal (e.g. a ladder's target) is met
                 if record.interrupt:
                     status = "interrupted"
                     monitor.close(status)
@@ -273,7 +275,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                         f"stopped by a signal after step {trainer.step_index}; a checkpoint is in {ckpt_dir}; "
                         f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)"
                     )
-                if stopped is not None:
+                if stopped is not None or stopped_early:
                     break
         status = "diverged" if stopped else "finished"
     finally:
@@ -301,6 +303,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
         "peak_lr": trainer.recipe.peak_lr,
         "diverged": stopped is not None,
         "stop_reason": stopped,
+        "stopped_early": stopped_early,
         "last_checkpoint": monitor.last_checkpoint,
         "wall_seconds": time.perf_counter() - started,
     }
