@@ -1,0 +1,140 @@
+"""The resolved recipe: what a run at this layout will actually use, before it trains.
+
+`resolve_recipe` turns the `optim`, `scaling` and `schedule` groups plus the layout
+into numbers: global batch B = W·b·k, peak lr from the scaling rule, warmup and
+run length in steps and epochs. `scaledrill recipe` prints it with `render_recipe`;
+the engine asks it for the rate of every step with `lr_at`.
+
+Steps per epoch are N // B when the tail is dropped and N / B when it is carried
+into the next epoch (train.tail); None for an endless stream, which has no epochs.
+"""
+
+from dataclasses import asdict, dataclass
+
+from rich.table import Table
+
+from ..errors import DataError
+from .build import decay_of, validate_optim
+from .groups import describe_exclusions
+from .scaling import scaled_lr, validate_scaling
+from .schedules import Schedule, build_schedule, check_warmup, validate_schedule
+
+FORMULAS = {
+    "none": "lr = base_lr",
+    "linear": "lr = base_lr · B / base_batch  (Goyal et al. 2017)",
+    "sqrt": "lr = base_lr · √(B / base_batch)  (Krizhevsky 2014; Hoffer et al. 2017)",
+    "power": "lr = base_lr · (B / base_batch)^exponent",
+}
+
+
+@dataclass(frozen=True)
+class Recipe:
+    global_batch: int
+    peak_lr: float
+    warmup_steps: int
+    steps_per_epoch: float | None
+    total_steps: int
+    rule: str
+    base_lr: float
+    base_batch: int | None
+    exponent: float | None
+    optimizer: str
+    weight_decay: float
+    decay: str
+    clip_norm: float | None
+    exclusions: str
+    schedule: Schedule
+    layout: str
+
+    def lr_at(self, step: int) -> float:
+        """The learning rate of optimizer step `step` (from 0)."""
+        return self.peak_lr * self.schedule.factor(step)
+
+    @property
+    def epochs(self) -> float | None:
+        """Passes over the training set in `total_steps` steps; None for a stream."""
+        return self.total_steps / self.steps_per_epoch if self.steps_per_epoch else None
+
+    def milestones(self) -> list[int]:
+        """Steps worth showing: start, mid-warmup, end of warmup, each decay milestone, middle, last."""
+        w, n = self.warmup_steps, self.total_steps
+        steps = {0, w // 2, w, n // 2, n - 1, *self.schedule.milestones}
+        return sorted(s for s in steps if 0 <= s < n)
+
+    def to_json(self) -> dict:
+        out = asdict(self)
+        out["schedule"]["milestones"] = list(self.schedule.milestones)
+        out["epochs"] = self.epochs
+        out["lr_at"] = [{"step": s, "lr": self.lr_at(s)} for s in self.milestones()]
+        return out
+
+
+def validate(cfg) -> None:
+    """Check the optim, scaling and schedule groups; raise ConfigError naming the first bad key."""
+    validate_optim(cfg.optim)
+    validate_scaling(cfg.scaling)
+    validate_schedule(cfg.schedule, cfg.train.steps)
+
+
+def resolve_recipe(cfg, layout, dataset_size: int | None, tail: str) -> Recipe:
+    """The recipe of `cfg` at `layout` on a training set of `dataset_size` samples (None: a stream)."""
+    validate(cfg)
+    B, total = layout.global_batch, cfg.train.steps
+    if dataset_size is not None and dataset_size < B:
+        raise DataError(f"the training set has {dataset_size} samples, fewer than one global batch B={B}")
+    per_epoch = None if dataset_size is None else (dataset_size // B if tail == "drop" else dataset_size / B)
+    schedule = build_schedule(cfg.schedule, total, per_epoch)
+    if cfg.schedule.get("warmup_epochs") is not None:
+        check_warmup(schedule.warmup_steps, total, "schedule.warmup_epochs", cfg.schedule.warmup_epochs)
+    s, o = cfg.scaling, cfg.optim
+    base_batch = None if s.rule == "none" else s.base_batch
+    exponent = s.exponent if s.rule == "power" else None
+    return Recipe(
+        global_batch=B,
+        peak_lr=scaled_lr(s.rule, s.base_lr, base_batch, B, exponent),
+        warmup_steps=schedule.warmup_steps,
+        steps_per_epoch=per_epoch,
+        total_steps=total,
+        rule=s.rule,
+        base_lr=float(s.base_lr),
+        base_batch=base_batch,
+        exponent=exponent,
+        optimizer=o.name,
+        weight_decay=float(o.get("weight_decay", 0.0)),
+        decay=decay_of(o),
+        clip_norm=o.get("clip_norm"),
+        exclusions=describe_exclusions(o.get("exclude")),
+        schedule=schedule,
+        layout=layout.describe(),
+    )
+
+
+def render_recipe(recipe: Recipe) -> Table:
+    """A two-column table of the recipe, ending with the rate at a few milestones."""
+    r = recipe
+    table = Table(title="recipe", show_header=False)
+    table.add_column("quantity", style="bold")
+    table.add_column("value")
+    per_epoch = "stream (no epochs)" if r.steps_per_epoch is None else f"{r.steps_per_epoch:g}"
+    epochs = f" ({r.epochs:.3g} epochs)" if r.epochs else ""
+    warm_epochs = f" ({r.warmup_steps / r.steps_per_epoch:.3g} epochs)" if r.steps_per_epoch else ""
+    base = f"{r.base_lr:g}" + ("" if r.base_batch is None else f" at batch {r.base_batch}")
+    rule = r.rule + (f", exponent {r.exponent:g}" if r.exponent is not None else "")
+    rows = [
+        ("layout", r.layout),
+        ("global batch B", str(r.global_batch)),
+        ("scaling rule", f"{rule}: {FORMULAS[r.rule]}"),
+        ("base lr", base),
+        ("peak lr", f"{r.peak_lr:.6g}"),
+        ("optimizer", f"{r.optimizer}, weight decay {r.weight_decay:g} ({r.decay})"),
+        ("clip norm", "off" if r.clip_norm is None else f"{r.clip_norm:g}"),
+        ("no decay, no trust ratio", r.exclusions),
+        ("schedule", f"{r.schedule.shape}, warmup from {r.schedule.warmup_start:g}·peak"),
+        ("warmup steps", f"{r.warmup_steps}{warm_epochs}"),
+        ("steps per epoch", per_epoch),
+        ("total steps", f"{r.total_steps}{epochs}"),
+    ]
+    rows += [(f"lr at step {s}", f"{r.lr_at(s):.6g}") for s in r.milestones()]
+    for row in rows:
+        table.add_row(*row)
+    return table
