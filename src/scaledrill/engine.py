@@ -10,6 +10,7 @@ The engine knows nothing of any one compressor, optimizer or detector: it calls
 their protocols. Every process runs this same loop on its own workers.
 """
 
+import hashlib
 import signal
 import threading
 import time
@@ -81,6 +82,8 @@ class Trainer:
             raise ConfigError("train.grads", f"fused cannot serve sync={self.cfg.sync.name}, which needs each worker's gradient; use auto, vmap or loop")
         if asked != "auto":
             return asked
+        if self.sync.bitwise:
+            return "loop"  # each worker computed alone: rows that do not depend on V (sync/tree.py)
         return "vmap" if self.sync.per_worker else "fused"
 
     # -- one step ------------------------------------------------------------
@@ -105,7 +108,7 @@ class Trainer:
         """Running statistics follow the mean over all W workers (the mean over processes of process means)."""
         if self.comm.size == 1:
             return
-        for name in self.grads.float_buffers:
+        for name in self.grads.running_stats:
             buf = dict(self.model.named_buffers())[name]
             self.comm.all_reduce(buf)
             buf /= self.comm.size
@@ -300,6 +303,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
         "eval": evals[max(evals)] if evals else {},
         "eval_history": {str(k): v for k, v in evals.items()},
         "final_params_l2": trainer.params_l2(),
+        "params_digest": hashlib.sha256(b"".join(p.detach().contiguous().numpy().tobytes() for p in trainer.params)).hexdigest(),
         "peak_lr": trainer.recipe.peak_lr,
         "diverged": stopped is not None,
         "stop_reason": stopped,

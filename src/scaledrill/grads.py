@@ -43,8 +43,9 @@ class GradComputer:
         self.names = [name for name, _ in model.named_parameters()]
         self.params = [p for _, p in model.named_parameters()]
         self.buffer_names = [name for name, _ in model.named_buffers()]
-        # Averaged across workers and processes; integer counters are the same everywhere.
-        self.float_buffers = [name for name, b in model.named_buffers() if b.is_floating_point()]
+        # Running statistics are averaged across processes; other buffers (constants,
+        # integer counters) are the same everywhere and are left alone.
+        self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
         self.numel = sum(p.numel() for p in self.params)
 
     # -- fused ---------------------------------------------------------------
