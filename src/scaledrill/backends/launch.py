@@ -55,35 +55,39 @@ def check_backend_available(backend: str) -> None:
             raise ConfigError("layout.backend", "this torch build has no gloo support", backend)
 
 
-def _worker_command(run_dir: Path) -> list[str]:
-    return [sys.executable, "-m", "scaledrill.worker", str(run_dir)]
+def _worker_command(run_dir: Path, module: str = "scaledrill.worker") -> list[str]:
+    return [sys.executable, "-m", module, str(run_dir)]
 
 
 def error_file(run_dir: Path, rank: int) -> Path:
     return Path(run_dir) / f".rank{rank}.error"
 
 
-def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", grace_s: float = 10.0) -> None:
-    """Run the P processes to completion; raise WorkerFailed naming the rank that failed."""
+def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", grace_s: float = 10.0,
+           module: str = "scaledrill.worker") -> None:
+    """Run the P processes (`python -m MODULE RUN_DIR`) to completion; raise WorkerFailed naming the rank that failed."""
     env = dict(os.environ, SCALEDRILL_THREADS=str(threads_per_proc(procs)), PYTHONUNBUFFERED="1")
     if backend == "mpi":
-        cmd = [find_mpiexec(), "-n", str(procs), *_worker_command(run_dir)]
+        cmd = [find_mpiexec(), "-n", str(procs), *_worker_command(run_dir, module)]
         children = {"mpiexec": subprocess.Popen(cmd, env=env)}
     else:
         port = free_port(address)
         children = {}
         for rank in range(procs):
             child_env = dict(env, MASTER_ADDR=address, MASTER_PORT=str(port), RANK=str(rank), LOCAL_RANK=str(rank), WORLD_SIZE=str(procs))
-            children[rank] = subprocess.Popen(_worker_command(run_dir), env=child_env)
+            children[rank] = subprocess.Popen(_worker_command(run_dir, module), env=child_env)
     _watch(children, run_dir, procs, grace_s)
 
 
-def _rank_message(run_dir: Path, procs: int) -> tuple[int | None, str]:
-    for rank in range(procs):
-        path = error_file(run_dir, rank)
-        if path.exists():
-            return rank, path.read_text().strip()
-    return None, ""
+def _failure_message(run_dir: Path, rank, code: int, procs: int) -> str:
+    """The failing rank's own message, or how it died."""
+    ranks = [rank] if isinstance(rank, int) else range(procs)  # under mpiexec any rank may have written
+    for r in ranks:
+        if error_file(run_dir, r).exists():
+            return f"rank {r}: " * (not isinstance(rank, int)) + error_file(run_dir, r).read_text().strip()
+    if code < 0:
+        return f"the process was killed by signal {-code} ({signal.Signals(-code).name})"
+    return f"the process exited with status {code}"
 
 
 def _stop(children: dict, grace_s: float) -> None:
@@ -105,16 +109,14 @@ def _watch(children: dict, run_dir: Path, procs: int, grace_s: float) -> None:
             codes = {rank: proc.poll() for rank, proc in children.items()}
             failed = {rank: code for rank, code in codes.items() if code not in (None, 0)}
             if failed:
-                first_rank, first_code = next(iter(failed.items()))
+                rank, code = next(iter(failed.items()))  # the first to fail; the others follow it
                 time.sleep(0.2)  # let the failing rank finish writing its message
                 _stop(children, grace_s)
-                rank, message = _rank_message(run_dir, procs)
-                if rank is None:
-                    rank = first_rank
-                    how = f"was killed by signal {-first_code}" if first_code < 0 else f"exited with status {first_code}"
-                    message = f"the process {how}"
-                if any(code == Interrupted.exit_code for code in failed.values()):
+                message = _failure_message(run_dir, rank, code, procs)
+                if code == Interrupted.exit_code:
                     raise Interrupted(message)
+                if rank == "mpiexec":
+                    raise WorkerFailed(f"an MPI rank failed ({message}); mpiexec's report above names it; the other ranks were stopped")
                 raise WorkerFailed(f"rank {rank} failed: {message}; the other processes were stopped")
             if all(code == 0 for code in codes.values()):
                 return
