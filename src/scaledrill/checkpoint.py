@@ -85,7 +85,11 @@ def load(path: str | Path) -> dict:
     try:
         state = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as err:  # truncated, corrupted, or holding objects we refuse to unpickle
-        raise CheckpointError(f"resume: {path} is not a readable checkpoint ({type(err).__name__}: {err})") from None
+        if "weights only" in str(err).lower():
+            why = "it holds Python objects beyond tensors and numbers, and loading those could run code"
+        else:
+            why = f"{type(err).__name__}: {str(err).strip().splitlines()[0] if str(err).strip() else 'unreadable'}"
+        raise CheckpointError(f"resume: {path} is not a readable checkpoint ({why})") from None
     if not isinstance(state, dict) or state.get("format") != FORMAT:
         raise CheckpointError(f"resume: {path} is not a scaledrill checkpoint")
     state["path"] = str(path)

@@ -13,9 +13,8 @@ from omegaconf import OmegaConf
 
 from .backends import open_collective
 from .backends.base import running_under_launcher
-from .backends.launch import check_backend_available, launch
+from .backends.launch import check_backend_available, check_port, launch
 from .errors import ConfigError
-from .layout import Layout
 from .progress import StepProgress
 from .validate import validate_run
 
@@ -41,7 +40,7 @@ def run_as_rank(cfg, run_dir: Path, collective) -> dict:
     progress = StepProgress(cfg, enabled=collective.rank == 0 and cfg.train.progress)
     try:
         with progress:
-            summary = run_training(cfg, collective, on_step=progress.update)
+            summary = run_training(cfg, collective, run_dir=run_dir, on_step=progress.update)
     finally:
         collective.close()
     if collective.rank == 0:
@@ -58,14 +57,15 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
             prepare_run_dir(run_dir, cfg)
         collective.barrier()
         return run_as_rank(cfg, run_dir, collective)
-    check_backend_available(layout.backend)
+    where = cfg.layout
+    check_backend_available(layout.backend, where.get("mpiexec"))
+    if layout.backend == "gloo":
+        check_port(where.get("address", "127.0.0.1"), where.get("port"))
     prepare_run_dir(run_dir, cfg)
     print(layout.describe())
     if layout.backend == "local":
         return run_as_rank(cfg, run_dir, open_collective("local"))
-    launch(run_dir, layout.backend, layout.procs, address=cfg.layout.get("address", "127.0.0.1"))
+    launch(run_dir, layout.backend, layout.procs, address=where.get("address", "127.0.0.1"), port=where.get("port"),
+           mpiexec=where.get("mpiexec"))
     return json.loads((run_dir / "summary.json").read_text())
 
-
-def describe(layout: Layout) -> str:
-    return layout.describe()

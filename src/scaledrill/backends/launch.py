@@ -32,7 +32,11 @@ def free_port(address: str = "127.0.0.1") -> int:
         return s.getsockname()[1]
 
 
-def find_mpiexec() -> str:
+def find_mpiexec(given: str | None = None) -> str:
+    if given:
+        if not (Path(given).is_file() and os.access(given, os.X_OK)):
+            raise ConfigError("layout.mpiexec", "must be the path of an executable mpiexec", given)
+        return given
     beside = Path(sys.executable).parent / "mpiexec"
     found = str(beside) if beside.exists() else shutil.which("mpiexec")
     if not found:
@@ -40,14 +44,27 @@ def find_mpiexec() -> str:
     return found
 
 
-def check_backend_available(backend: str) -> None:
+def check_port(address: str, port: int | None) -> None:
+    """A port the user chose must be free now, or the rendezvous would fail later and less clearly."""
+    if port is None:
+        return
+    if not isinstance(port, int) or not 0 < port < 65536:
+        raise ConfigError("layout.port", "must be a port number from 1 to 65535, or null for a free one", port)
+    with socket.socket() as s:
+        try:
+            s.bind((address, port))
+        except OSError as err:
+            raise ConfigError("layout.port", f"port {port} on {address} is not free ({err.strerror}); choose another or null", port) from None
+
+
+def check_backend_available(backend: str, mpiexec: str | None = None) -> None:
     """Fail before anything starts when the backend's library is missing."""
     if backend == "mpi":
         try:
             import mpi4py  # noqa: F401
         except ImportError:
             raise ConfigError("layout.backend", "mpi needs the mpi4py package (pip install mpi4py mpich)", backend) from None
-        find_mpiexec()
+        find_mpiexec(mpiexec)
     if backend == "gloo":
         import torch.distributed as dist
 
@@ -64,14 +81,14 @@ def error_file(run_dir: Path, rank: int) -> Path:
 
 
 def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", grace_s: float = 10.0,
-           module: str = "scaledrill.worker") -> None:
+           port: int | None = None, mpiexec: str | None = None, module: str = "scaledrill.worker") -> None:
     """Run the P processes (`python -m MODULE RUN_DIR`) to completion; raise WorkerFailed naming the rank that failed."""
     env = dict(os.environ, SCALEDRILL_THREADS=str(threads_per_proc(procs)), PYTHONUNBUFFERED="1")
     if backend == "mpi":
-        cmd = [find_mpiexec(), "-n", str(procs), *_worker_command(run_dir, module)]
+        cmd = [find_mpiexec(mpiexec), "-n", str(procs), *_worker_command(run_dir, module)]
         children = {"mpiexec": subprocess.Popen(cmd, env=env)}
     else:
-        port = free_port(address)
+        port = port or free_port(address)
         children = {}
         for rank in range(procs):
             child_env = dict(env, MASTER_ADDR=address, MASTER_PORT=str(port), RANK=str(rank), LOCAL_RANK=str(rank), WORLD_SIZE=str(procs))
