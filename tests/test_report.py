@@ -1,0 +1,274 @@
+"""The HTML report: every kind of directory renders its figures and tables, self-contained."""
+
+import json
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pytest
+from omegaconf import OmegaConf
+
+from scaledrill.cli import main
+from scaledrill.errors import ConfigError
+from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
+from scaledrill.report import find_results, report_verb
+from scaledrill.telemetry.store import RunStore
+
+ROOT = Path(__file__).resolve().parents[1]
+LAYERS = ("conv1.weight", "conv2.weight", "head.weight")
+
+
+class Page(HTMLParser):
+    """Sections with their images and table captions, and every outside reference."""
+
+    def __init__(self, text: str):
+        super().__init__()
+        self.sections, self.external, self._caption, self._current = {}, [], False, None
+        self.classes = []
+        self.feed(text)
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        for name in ("src", "href"):
+            value = attrs.get(name)
+            if value is not None and not value.startswith(("data:", "#")):
+                self.external.append(value)
+        if tag == "section":
+            self._current = attrs["id"]
+            self.sections[self._current] = {"imgs": [], "captions": []}
+        elif tag == "img":
+            self.sections[self._current]["imgs"].append(attrs)
+        elif tag == "caption":
+            self._caption = True
+            self.sections[self._current]["captions"].append("")
+        elif tag == "tr" and "class" in attrs:
+            self.classes.append(attrs["class"])
+        elif tag in ("link", "script", "iframe"):
+            self.external.append(tag)
+
+    def handle_endtag(self, tag):
+        if tag == "caption":
+            self._caption = False
+
+    def handle_data(self, data):
+        if self._caption:
+            self.sections[self._current]["captions"][-1] += data
+
+
+def render(path: Path, tmp_path: Path) -> tuple[str, Page]:
+    report_verb(OmegaConf.create({"path": str(path), "out": None, "debug": False}), tmp_path)
+    text = (path / "report.html").read_text(encoding="utf-8")
+    return text, Page(text)
+
+
+def pngs(section: dict) -> list[dict]:
+    imgs = section["imgs"]
+    assert all(i["src"].startswith("data:image/png;base64,") and len(i["src"]) > 2000 and i["alt"] for i in imgs)
+    return imgs
+
+
+# ------------------------------------------------------------------ synthetic directories
+
+
+def make_run(directory: Path, steps: int = 30, compression: bool = True, summary_extra: dict | None = None) -> Path:
+    directory.mkdir(parents=True)
+    store = RunStore(directory / "run.sqlite", flush_every=7)
+    store.start("run", "task: digits\n")
+    for step in range(1, steps + 1):
+        values = {"loss": 2.3 / step, "lr": 0.1 * min(1, step / 5), "grad_norm": 3.0 / step, "grad_norm_clipped": 1.0,
+                  "b_simple": 40.0 + step, "critical_batch": 60.0 + step}  # fmt: skip
+        if compression:
+            values |= {"cosine_to_exact": 0.9, "rel_error_to_exact": 0.3, "wire_bytes_per_worker": 1024.0}
+        store.log_scalars(step, values)
+        if step % 5 == 0:
+            store.log_layers(step, {n: {"weight_norm": 1.0, "update_ratio": 1e-3 * (i + 1) * step, "trust_ratio": 0.5}
+                                    for i, n in enumerate(LAYERS)})  # fmt: skip
+    store.log_event(20, "grad_spike", {"factor": 4.0})
+    store.close()
+    summary = {"workers": 8, "procs": 1, "micro_batch": 16, "accum": 1, "global_batch": 128, "task": "digits",
+               "final_loss": 2.3 / steps, "eval": {"accuracy": 0.91}, "diverged": False,
+               "eval_history": {"10": {"accuracy": 0.5}, "20": {"accuracy": 0.8}, "30": {"accuracy": 0.91}}}  # fmt: skip
+    (directory / "summary.json").write_text(json.dumps(summary | (summary_extra or {})))
+    (directory / "incident-20.json").write_text(json.dumps({"step": 20, "reason": "grad_spike",
+                                                            "first_layer": "conv2.weight"}))  # fmt: skip
+    return directory
+
+
+def make_check(directory: Path, ok: bool) -> Path:
+    directory.mkdir(parents=True)
+    layers = [{"layer": n, "max_abs": 1e-7, "max_rel": 1e-6, "tolerance": 1e-5, "ok": True} for n in LAYERS]
+    bad = [{"layer": "head.weight", "max_abs": 0.2, "max_rel": 0.4, "tolerance": 1e-5, "ok": ok}]
+    doc = {"verdict": "match" if ok else "mismatch", "tolerance_rule": "1e-5 * sqrt(k)",
+           "paths": [{"name": "accumulation", "ok": True, "layers": layers,
+                      "trajectory": {"steps": 5, "max_abs": 1e-6, "tolerance": 1e-4, "ok": True}},
+                     {"name": "virtual workers", "ok": ok, "layers": bad, "trajectory": None}],
+           "diagnosis": [] if ok else [{"cause": "batch norm over the whole batch", "evidence": "only BN layers differ",
+                                        "fix": "set task.model.group_size"}]}  # fmt: skip
+    (directory / "check.json").write_text(json.dumps(doc))
+    return directory
+
+
+def make_replay(directory: Path) -> Path:
+    make_run(directory / "original", steps=20, compression=False)
+    for name in ("base", "lower_lr"):
+        make_run(directory / "variants" / name, steps=20, compression=False)
+    (directory / "cluster_log.csv").write_text("step,loss,grad_norm\n" + "".join(
+        f"{s},{2.0 / s:.4f},{1.0 + s / 10:.3f}\n" for s in range(1, 21)))  # fmt: skip
+    doc = {"checkpoint": "original/checkpoints/step-10.pt", "from_step": 10, "cluster_log": "cluster_log.csv",
+           "departure_step": 14, "variants": [
+               {"name": n, "overrides": ["optim.lr=0.05"] if n != "base" else [], "run_dir": f"variants/{n}",
+                "final_loss": 0.1, "diverged": False} for n in ("base", "lower_lr")]}  # fmt: skip
+    (directory / "replay.json").write_text(json.dumps(doc))
+    return directory
+
+
+def make_ladder(directory: Path) -> Path:
+    directory.mkdir(parents=True)
+    s_min, b_noise = 100.0, 512.0  # S = S_min (1 + B_noise / B)
+    rungs = [{"global_batch": b, "lr": 0.1 * b / 64, "steps_to_target": round(s_min * (1 + b_noise / b)),
+              "samples_to_target": None, "final_metric": 0.9, "diverged": False, "noise_scale": 500.0,
+              "wall_seconds": 3.0, "regime": "perfect scaling", "run_dir": f"rung-{b}"} for b in (64, 256, 1024)]
+    rungs.append(rungs[-1] | {"global_batch": 4096, "steps_to_target": None, "diverged": True, "regime": None})
+    search = {str(r["global_batch"]): {"best_lr": r["lr"], "window": [r["lr"] / 2, r["lr"] * 2], "samples_spent": 9000,
+              "trials": [{"lr": r["lr"] * f, "reached": f < 4, "diverged": f >= 4, "pruned": False, "steps": 50}
+                         for f in (0.25, 1, 4)]} for r in rungs}  # fmt: skip
+    doc = {"mode": "workers", "rungs": rungs, "search": search,
+           "fit": {"s_min": s_min, "e_min": s_min * b_noise, "b_noise": b_noise, "b_crit": b_noise}}  # fmt: skip
+    (directory / "ladder.json").write_text(json.dumps(doc))
+    return directory
+
+
+def make_forecast(directory: Path) -> Path:
+    directory.mkdir(parents=True, exist_ok=True)
+    cluster = validate(OmegaConf.load(ROOT / "configs" / "forecast" / "example.yaml"))
+    rungs = [{"global_batch": 256, "steps_to_target": 4000}, {"global_batch": 4096, "steps_to_target": 600},
+             {"global_batch": 65536, "steps_to_target": None}]  # fmt: skip
+    rows = project_rungs(cluster, rungs, 2e9, 4e8, None)
+    (directory / "forecast.json").write_text(json.dumps(forecast_json(cluster, rows, 2e9, 4e8, None, {"x": "y"})))
+    return directory
+
+
+# ------------------------------------------------------------------ one kind at a time
+
+
+def test_run_report_has_every_curve_heatmap_and_table(tmp_path, capsys):
+    run = make_run(tmp_path / "run")
+    text, page = render(run, tmp_path)
+    assert capsys.readouterr().out.strip() == str(run / "report.html")
+    (section,) = page.sections.values()
+    alts = [i["alt"] for i in pngs(section)]
+    # loss, lr, grad norm, noise scale, compression fidelity, bytes, eval metrics, two heatmaps
+    assert len(alts) == 9
+    assert any("grad_norm, grad_norm_clipped" in a for a in alts)
+    assert any("update / weight norm (3 layers × 6 steps)" in a for a in alts)
+    assert any("trust ratio" in a for a in alts)
+    assert section["captions"] == ["Run summary", "Final evaluation", "Events the run recorded",
+                                   "Incidents (divergence records)"]  # fmt: skip
+    assert "grad_spike" in text and "conv2.weight" in text and "Not recorded here" not in text
+    assert page.external == []
+
+
+def test_a_bare_run_says_what_is_absent(tmp_path):
+    run = tmp_path / "bare"
+    run.mkdir()
+    (run / "summary.json").write_text(json.dumps({"final_loss": 1.5, "diverged": True, "stop_reason": "nan loss"}))
+    text, page = render(run, tmp_path)
+    (section,) = page.sections.values()
+    assert section["imgs"] == [] and section["captions"] == ["Run summary"]
+    assert "Not recorded here: run.sqlite (no curves)." in text
+    assert "diverged (nan loss)" in text
+
+
+@pytest.mark.parametrize("ok", [True, False])
+def test_check_report_colours_each_layer_and_shows_diagnosis(tmp_path, ok):
+    text, page = render(make_check(tmp_path / "check", ok), tmp_path)
+    (section,) = page.sections.values()
+    assert section["imgs"] == []
+    assert section["captions"][:2] == ["Gradient of each path vs the true large batch, per layer",
+                                       "Parameter trajectory after several steps"]  # fmt: skip
+    # four layer rows and one trajectory row; the head layer of the second path is outside when not ok
+    assert page.classes == ["ok"] * 3 + ["ok" if ok else "bad"] + ["ok"]
+    assert ("Diagnosis: likely causes of the mismatch" in section["captions"]) is not ok
+    assert ("verdict: mismatch" in text) is not ok and ("set task.model.group_size" in text) is not ok
+
+
+def test_replay_report_overlays_variants_original_and_cluster_log(tmp_path):
+    text, page = render(make_replay(tmp_path / "replay"), tmp_path)
+    assert list(page.sections) == ["replay"]  # the variant and original runs are not listed again
+    section = page.sections["replay"]
+    alts = [i["alt"] for i in pngs(section)]
+    assert alts == ["loss of original, base, lower_lr, cluster log against step, resume and departure marked",
+                    "global gradient norm of original, base, lower_lr, cluster log against step, resume and "
+                    "departure marked"]  # fmt: skip
+    assert section["captions"] == ["Variants resumed at step 10 from original/checkpoints/step-10.pt"]
+    assert "optim.lr=0.05" in text and "Not recorded here" not in text
+
+
+def test_ladder_report_with_forecast_beside_it(tmp_path):
+    ladder = make_forecast(make_ladder(tmp_path / "ladder"))
+    text, page = render(ladder, tmp_path)
+    assert list(page.sections) == ["ladder", "forecast"]
+    lad, fc = page.sections["ladder"], page.sections["forecast"]
+    assert [i["alt"][:22] for i in pngs(lad)] == ["Steps to target agains", "Learning-rate trials a"]
+    assert lad["captions"] == ["Rungs (mode: workers)", "Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)",
+                               "Learning-rate search per rung"]  # fmt: skip
+    assert len(pngs(fc)) == 1 and "cheapest and fastest marked" in fc["imgs"][0]["alt"]
+    assert fc["captions"] == ["Projection per rung", "Cluster as described", "Inputs of the projection",
+                              "Where each input came from", "Rules of the model"]  # fmt: skip
+    assert CAUTION in text and "not promises" in text and "A trial on the target hardware decides" in text
+    assert page.classes.count("pick") >= 1 and page.classes.count("bad") == 1  # the diverged 4096 rung
+
+
+def test_forecast_report_marks_cheapest_and_fastest_rows(tmp_path):
+    directory = make_forecast(tmp_path / "fc")
+    doc = json.loads((directory / "forecast.json").read_text())
+    picks = [r["global_batch"] for r in doc["rungs"] if r["cheapest"] or r["fastest"]]
+    text, page = render(directory, tmp_path)
+    assert page.classes.count("pick") == len(picks) >= 1
+    assert "65536" in text and "–" in text  # the rung that never reached the target has no cost
+
+
+# ------------------------------------------------------------------ a tree of results, errors, the CLI
+
+
+def test_top_directory_renders_one_section_per_result(tmp_path):
+    top = tmp_path / "demo"
+    make_check(top / "check", False)
+    make_ladder(top / "ladder")
+    make_forecast(top / "forecast")
+    make_run(top / "ladder" / "rung-64")  # inside the ladder: not a section of its own
+    assert [(n, d.name) for n, d in find_results(top)] == [
+        ("check.json", "check"), ("forecast.json", "forecast"), ("ladder.json", "ladder")]  # fmt: skip
+    text, page = render(top, tmp_path)
+    assert list(page.sections) == ["check-check", "forecast-forecast", "ladder-ladder"]
+    assert sum(len(s["imgs"]) for s in page.sections.values()) == 3
+    assert all(f'href="#{sid}"' in text for sid in page.sections) and page.external == []
+
+
+def test_unreadable_file_becomes_a_note(tmp_path):
+    directory = tmp_path / "broken"
+    directory.mkdir()
+    (directory / "check.json").write_text("{not json")
+    text, page = render(directory, tmp_path)
+    assert "check.json could not be read" in text and len(page.sections) == 1
+
+
+@pytest.mark.parametrize("path", ["missing", "empty"])
+def test_bad_path_names_the_key(tmp_path, path):
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(ConfigError) as err:
+        report_verb(OmegaConf.create({"path": str(tmp_path / path), "out": None}), tmp_path)
+    assert err.value.key == "path"
+
+
+def test_cli_writes_only_the_report(tmp_path, monkeypatch, capsys):
+    run = make_check(tmp_path / "run", ok=True)  # no figures: this test is about the command line
+    before = sorted(p.name for p in run.iterdir())
+    monkeypatch.chdir(tmp_path)
+    main(["report", str(run)])  # returns normally on success
+    assert capsys.readouterr().out.strip().endswith("report.html")
+    assert sorted(p.name for p in run.iterdir()) == sorted([*before, "report.html"])
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no Hydra folder or log in the cwd
+    with pytest.raises(SystemExit) as bad:
+        main(["report", str(tmp_path / "nowhere")])
+    assert bad.value.code == 2 and "path: must be an existing directory" in capsys.readouterr().err
+    assert not (tmp_path / "nowhere").exists()
