@@ -45,6 +45,7 @@ def collect(trainer, monitor) -> dict:
         "signature": _signature(trainer.model),
         "model": trainer.model.state_dict(),
         "optimizer": trainer.optimizer.state_dict(),
+        "optimizer_class": type(trainer.optimizer).__name__,
         "sync": sync_state,
         "monitor": monitor.state_dict() if monitor is not None else None,
         "rng": torch.get_rng_state(),
@@ -96,6 +97,17 @@ def load(path: str | Path) -> dict:
     return state
 
 
+def _restore_optimizer(optimizer, state: dict) -> None:
+    """Keep the saved moments, but this run's hyperparameters: a resume with `optim.*`
+    overrides (a replay variant) must use them. Another optimizer starts fresh."""
+    if state.get("optimizer_class") != type(optimizer).__name__:
+        return
+    fresh = [{k: v for k, v in group.items() if k != "params"} for group in optimizer.param_groups]
+    optimizer.load_state_dict(state["optimizer"])
+    for group, settings in zip(optimizer.param_groups, fresh):
+        group.update(settings)
+
+
 def restore(trainer, monitor, state: dict) -> None:
     """Put a loaded checkpoint into a freshly built trainer (and monitor)."""
     where = state.get("path", "checkpoint")
@@ -109,7 +121,7 @@ def restore(trainer, monitor, state: dict) -> None:
                 f"layout.{key}={getattr(layout, key)}; only layout.procs and layout.backend may change"
             )
     trainer.model.load_state_dict(state["model"])
-    trainer.optimizer.load_state_dict(state["optimizer"])
+    _restore_optimizer(trainer.optimizer, state)
     rows = slice(trainer.workers.start, trainer.workers.stop)
     trainer.sync.load_state_dict({k: v[rows] if k.startswith("worker.") else v for k, v in state["sync"].items()})
     if monitor is not None and state.get("monitor") is not None:

@@ -66,7 +66,6 @@ class Monitor:
         if record.small_sq is not None and record.big_sq is not None and self.b_big > self.b_small:
             self.noise.update(record.small_sq, self.b_small, record.big_sq, self.b_big)
         scalars.update(self.noise.scalars())
-        scalars["critical_batch"] = scalars["b_simple"]  # B_crit ≈ B_simple (McCandlish et al. 2018)
         layers = dict(record.layers or {})
         for name, ratio in (record.trust or {}).items():
             layers.setdefault(name, {})["trust_ratio"] = float(ratio)

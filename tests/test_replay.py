@@ -1,0 +1,88 @@
+"""`scaledrill replay`: variants from a checkpoint, bitwise continuation, the divergence demo."""
+
+import json
+import math
+
+import numpy as np
+import pytest
+import torch
+from conftest import make_config
+
+from scaledrill.errors import ConfigError
+from scaledrill.replay import replay_verb
+from scaledrill.runs import run_verb
+from scaledrill.telemetry.store import read_scalars
+
+SMALL = ["task=teacher", "layout.workers=4", "layout.micro_batch=8", "train.steps=12", "train.checkpoint_every=4",
+         "train.eval_every=0", "train.progress=false", "optim.lr=0.05"]
+
+
+def _replay(tmp_path, source, *overrides):
+    cfg = make_config(f"replay.from={source}", *overrides, name="replay")
+    replay_verb(cfg, tmp_path / "replay")
+    return json.loads((tmp_path / "replay" / "replay.json").read_text())
+
+
+@pytest.fixture(scope="module")
+def small_run(tmp_path_factory):
+    run_dir = tmp_path_factory.mktemp("orig") / "run"
+    summary = run_verb(make_config(*SMALL), run_dir)
+    return run_dir, summary
+
+
+def test_two_variants_and_a_bitwise_original(tmp_path, small_run):
+    run_dir, straight = small_run
+    steps, loss = read_scalars(run_dir / "run.sqlite")["loss"]
+    logged = np.where(steps < 9, loss, loss * 1.5)  # a cluster log that follows the run, then departs at step 9
+    log = tmp_path / "job.csv"
+    log.write_text("step,loss,wall\n" + "".join(f"{s},{float(x)!r},0\n" for s, x in zip(steps, logged)))
+    out = _replay(tmp_path, run_dir / "checkpoints" / "step-0000004.pt",
+                  '+replay.variants.slow=["optim.lr=0.01"]', "+replay.variants.clip='optim.clip_norm=0.01'",
+                  f"replay.cluster_log={log}")
+
+    assert out["from_step"] == 4 and out["checkpoint"].endswith("step-0000004.pt")
+    assert [v["name"] for v in out["variants"]] == ["original", "slow", "clip"]
+    assert out["variants"][1]["overrides"] == ["optim.lr=0.01"]
+    assert out["departure_step"] == 9 and out["cluster_log"] == str(log)
+    for v in out["variants"]:
+        summary = json.loads((tmp_path / "replay" / v["run_dir"] / "summary.json").read_text())
+        assert summary["steps"] == 12 and summary["resumed_from_step"] == 4
+        assert summary["final_loss"] == v["final_loss"] and not v["diverged"]
+    original = json.loads((tmp_path / "replay" / "variant-original" / "summary.json").read_text())
+    # The original continuation is the uninterrupted run, bit for bit.
+    assert original["final_loss"] == straight["final_loss"]
+    assert original["final_params_l2"] == straight["final_params_l2"]
+    replayed = read_scalars(tmp_path / "replay" / "variant-original" / "run.sqlite")["loss"]
+    assert replayed[0].tolist() == list(range(4, 12))
+    assert replayed[1].tolist() == loss[4:].tolist()
+    a = torch.load(run_dir / "checkpoints" / "step-0000012.pt", weights_only=True)["model"]
+    b = torch.load(tmp_path / "replay" / "variant-original" / "checkpoints" / "step-0000012.pt", weights_only=True)["model"]
+    assert all(torch.equal(a[k], b[k]) for k in a)
+    # The variants really changed something.
+    assert out["variants"][1]["final_loss"] != straight["final_loss"]
+    assert out["variants"][2]["final_loss"] != straight["final_loss"]
+    assert (tmp_path / "replay" / "replay.png").stat().st_size > 10_000
+
+
+def test_a_variant_may_not_change_the_layout(tmp_path, small_run):
+    run_dir, _ = small_run
+    with pytest.raises(ConfigError) as err:
+        _replay(tmp_path, run_dir, "replay.steps=16", '+replay.variants.big=["layout.workers=8"]')
+    assert err.value.key == "replay.variants.big" and "layout.workers" in str(err.value)
+    assert not (tmp_path / "replay" / "variant-original").exists()  # refused before anything trained
+
+
+def test_divergence_demo_is_rescued_from_a_checkpoint(tmp_path):
+    run_dir = tmp_path / "blowup"
+    blown = run_verb(make_config("+recipe=divergence", "train.progress=false"), run_dir)
+    assert blown["diverged"] and blown["steps"] <= 10 and blown["incidents"]  # no warmup: stopped within 10 steps
+    out = _replay(tmp_path, run_dir / "checkpoints" / "step-0000001.pt", "replay.steps=25",
+                  "+replay.variants.warmup='schedule.warmup_steps=25'", '+replay.variants.lamb=["optim=lamb","optim.lr=0.002"]')
+    by_name = {v["name"]: v for v in out["variants"]}
+    assert by_name["original"]["diverged"]
+    assert not math.isfinite(by_name["original"]["final_loss"]) or by_name["original"]["final_loss"] > 1e6
+    start_loss = read_scalars(run_dir / "run.sqlite")["loss"][1][1]  # loss at the checkpoint's step: ~150
+    assert start_loss > 50
+    for name in ("warmup", "lamb"):
+        assert not by_name[name]["diverged"]
+        assert by_name[name]["final_loss"] < 10.0 < start_loss  # below the 13.1 of the initial weights
