@@ -22,7 +22,7 @@ RUN_PLOTS = (  # (title, y label, scalar names, log y)
     ("Training loss", "loss", ("loss",), True),
     ("Learning-rate schedule", "learning rate", ("lr",), False),
     ("Gradient norm before and after clipping", "global norm", ("grad_norm", "grad_norm_clipped"), True),
-    ("Gradient noise scale", "samples", ("b_simple", "critical_batch"), True),
+    ("Gradient noise scale", "samples", ("b_simple",), True),
     ("Compression fidelity", "vs exact average", ("cosine_to_exact", "rel_error_to_exact"), False),
     ("Bytes sent per worker per step", "bytes", ("wire_bytes_per_worker",), False),
 )
