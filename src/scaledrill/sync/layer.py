@@ -10,6 +10,8 @@ Steps:
 2. sum the decompressed rows in the process, all-reduce per bucket, divide by W;
 3. if `sync.fidelity`, average the same rows exactly (one more sum and
    all-reduce) and compare.
+With `sync.bitwise` every sum of step 2 follows one fixed tree over global worker
+ids (tree.py) instead of the all-reduce, so layouts agree to the bit.
 The result is identical on every process and does not depend on P.
 """
 
@@ -23,6 +25,7 @@ from ..errors import ConfigError
 from .buckets import bucketed_sum
 from .compress import NAMES, Round, build, dense_bytes
 from .feedback import ErrorFeedback
+from .tree import tree_sum
 
 DEFAULTS = {
     "name": "exact",
@@ -36,6 +39,7 @@ DEFAULTS = {
     "rank": 1,
     "start_step": 0,
     "min_compression": 1.0,
+    "bitwise": False,
 }
 
 
@@ -57,6 +61,7 @@ def validate(cfg) -> None:
         ("name", get("name") in NAMES, f"must be one of {', '.join(NAMES)}"),
         ("error_feedback", isinstance(get("error_feedback"), bool), "must be true or false"),
         ("fidelity", isinstance(get("fidelity"), bool), "must be true or false"),
+        ("bitwise", isinstance(get("bitwise"), bool), "must be true or false"),
         ("unbiased", isinstance(get("unbiased"), bool), "must be true or false"),
         ("bucket_mib", _number(get("bucket_mib")) and get("bucket_mib") > 0, "must be a number > 0"),
         ("fraction", _number(get("fraction")) and 0 < get("fraction") <= 1, "must be in (0, 1]"),
@@ -72,8 +77,9 @@ def validate(cfg) -> None:
 
 
 class SyncLayer:
-    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype):
+    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype, bitwise=False):
         self.compressor, self.layout, self.collective = compressor, layout, collective
+        self.bitwise = bitwise
         self.seed, self.bucket_mib, self.fidelity = seed, bucket_mib, fidelity
         self.n = sum(math.prod(s) for s in shapes)
         self.state = compressor.init(list(shapes), layout.per_proc, seed, dtype)
@@ -82,9 +88,11 @@ class SyncLayer:
 
     @property
     def per_worker(self) -> bool:
-        return self.compressor.per_worker
+        return self.bitwise or self.compressor.per_worker  # the tree needs each worker's row
 
     def _sum(self, rows: torch.Tensor) -> torch.Tensor:
+        if self.bitwise:
+            return tree_sum(rows, self.collective, self.bucket_mib)
         return bucketed_sum(rows, self.collective, self.bucket_mib)
 
     def _mean(self, rows: torch.Tensor) -> torch.Tensor:
@@ -105,8 +113,10 @@ class SyncLayer:
             "compression_ratio": full / out.wire_bytes,
             **out.stats,
         }
-        if self.fidelity:  # 3.
-            exact = out.mean if self.compressor.lossless else self._mean(local)
+        if self.fidelity and self.compressor.lossless:  # 3., known without arithmetic: the mean is the exact one
+            stats["cosine_to_exact"], stats["rel_error_to_exact"] = 1.0, 0.0
+        elif self.fidelity:  # 3.
+            exact = self._mean(local)
             diff, size = (out.mean - exact).double().norm(), exact.double().norm()
             stats["cosine_to_exact"] = float(torch.nn.functional.cosine_similarity(out.mean.double(), exact.double(), dim=0))
             stats["rel_error_to_exact"] = float(diff / size) if size > 0 else float(diff > 0)
@@ -157,4 +167,4 @@ def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = 
     compressor = build(cfg)
     if get("error_feedback"):
         compressor = ErrorFeedback(compressor)
-    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype)
+    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype, get("bitwise"))

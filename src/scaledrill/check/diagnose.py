@@ -1,0 +1,189 @@
+"""Name the cause of a mismatch by rerunning targeted variants, and say how to fix it.
+
+Checks, in order; each explains some of the failing paths and hands the rest on:
+1. randomness: does the float64 reference itself change when only the global
+   random state changes? Then rerun with every dropout module at p=0; the paths
+   that now match are explained by dropout, and later checks run with it off;
+2. a custom step: where it called reduce and clipping, and which wrong rule its
+   gradient follows (diagnose_step.py);
+3. BatchNorm (check.batchnorm=global): does the path match the reference with
+   per-worker statistics? Then try synchronised statistics (ghost batch norm over
+   all workers of a micro-step, P = 1) and report whether that matches;
+4. loss normalisation: is the task's loss a sum over units, i.e. is the loss of
+   the whole batch the sum of the losses of its micro-batches?
+5. otherwise: a match at check.tolerance_scale=1 means the scale was set too
+   tight; a match when rerun in float64 means float32 rounding beyond the rule;
+   else a real difference no check here names.
+"""
+
+from dataclasses import dataclass
+
+import torch
+
+from ..models.ghost_bn import GhostBatchNorm, set_group_size
+from .paths import variant
+from .reference import build_model, global_batches
+from .tolerance import Tolerance, compare, compare_grads
+
+
+@dataclass
+class Finding:
+    cause: str
+    evidence: str
+    fix: str
+
+
+def _rel(layers) -> float:
+    return max(x.max_rel for x in layers)
+
+
+def dropout_modules(model) -> list:
+    return [m for m in model.modules() if "dropout" in type(m).__name__.lower() and hasattr(m, "p")]
+
+
+def dropout_off(model) -> None:
+    for m in dropout_modules(model):
+        m.p = 0.0
+
+
+class Diagnosis:
+    def __init__(self, runner, ref, tol: Tolerance, failing, runs):
+        self.runner, self.ref, self.tol = runner, ref, tol
+        self.open = [r.name for r in failing]  # paths not yet explained
+        self.runs, self.hook, self.findings = dict(runs), None, []
+
+    def _explained(self, names, finding: Finding) -> None:
+        self.open = [n for n in self.open if n not in names]
+        self.findings.append(finding)
+
+    def _rerun(self, name: str, **kw):
+        return self.runner.run(name, model_hook=self.hook, **kw)
+
+    # 1. -----------------------------------------------------------------------
+    def randomness(self) -> None:
+        shifted = self.runner.reference(model_hook=lambda m: torch.rand(7))  # only the random state moves
+        moved = compare_grads(self.ref.names, shifted.grads, self.ref.grads, self.tol)
+        if all(x.ok for x in moved):
+            return
+        task = build_model(self.runner.cfg)
+        found = dropout_modules(task.model)
+        if not found:
+            self.findings.append(Finding(
+                "random draws in the forward pass that are not keyed on the sample",
+                f"the float64 reference's gradient changes by up to {_rel(moved):.3g} (relative) when only the global random state changes",
+                "key every random draw (noise, augmentation) on the global sample index so every layout draws the same"))
+            return
+        self.hook = dropout_off
+        self.ref = self.runner.reference(model_hook=dropout_off)
+        fixed = []
+        for name in self.open:
+            self.runs[name] = self._rerun(name)
+            if compare(name, self.runs[name], self.ref, self.tol).ok:
+                fixed.append(name)
+        kinds = sorted({type(m).__name__ for m in found})
+        still = [n for n in self.open if n not in fixed]
+        self._explained(fixed, Finding(
+            "dropout masks come from each process's random stream, not from the sample",
+            f"the float64 reference's gradient changes by up to {_rel(moved):.3g} (relative) when only the global random state changes; "
+            f"with p=0 in {len(found)} {'/'.join(kinds)} module(s) " + (f"{', '.join(fixed)} match the true batch" if fixed else "no path matches yet")
+            + (f"; {', '.join(still)} still differ (see below)" if still else ""),
+            "draw masks keyed on the global sample index: scaledrill.check.dropout.KeyedDropout (keys = micro_batches[m]['index'] "
+            "in a custom step, or content_keys(input) in a model), so every layout drops the same units"))
+
+    # 3. -----------------------------------------------------------------------
+    def batchnorm(self) -> None:
+        settings, cfg = self.runner.settings, self.runner.cfg
+        task = build_model(cfg)
+        if settings.batchnorm != "global" or not any(isinstance(m, GhostBatchNorm) for m in task.model.modules()):
+            return
+        per_worker = self.runner.reference(batchnorm="worker", model_hook=self.hook)
+        explained = [n for n in self.open if compare(n, self.runs[n], per_worker, self.tol).ok]
+        if not explained:
+            return
+        L = cfg.layout
+        synced = self._rerun("workers:fused", cfg=variant(cfg, **{"layout.procs": 1, "layout.backend": "local"}), group_size=L.workers * L.micro_batch)
+        result = compare("synchronised", synced, self.ref, self.tol)
+        how = (f"ghost batch norm over all W·b = {L.workers * L.micro_batch} samples of a micro-step (fused path, P = 1) "
+               + (f"matches the true batch (max rel error {_rel(result.layers):.3g})" if result.ok else
+                  f"still differs (max rel error {_rel(result.layers):.3g})"
+                  + (f": with accum={L.accum} no layout normalises over the whole batch of B={L.workers * L.micro_batch * L.accum} at once" if L.accum > 1 else "")))
+        self._explained(explained, Finding(
+            "BatchNorm statistics: each worker normalises its own micro-batch of b samples, the true batch normalises all B",
+            f"{', '.join(explained)} match the reference with per-worker statistics (check.batchnorm=worker); {how}",
+            "compare what the cluster computes (check.batchnorm=worker), or synchronise the statistics: in one process set the "
+            "GhostBatchNorm group to all workers of the micro-step (set_group_size(model, W·b)); across processes the simulator "
+            "does not synchronise BatchNorm statistics (torch's SyncBatchNorm does not run on CPU), so P > 1 keeps per-worker statistics"))
+
+    # 4. -----------------------------------------------------------------------
+    def loss_normalisation(self) -> None:
+        engine = [n for n in self.open if not n.startswith("step:")]
+        if not engine:
+            return
+        cfg = self.runner.cfg
+        task = build_model(cfg)
+        if self.hook:
+            self.hook(task.model)
+        b = cfg.layout.micro_batch
+        set_group_size(task.model, b)
+        batch = global_batches(cfg, task.data, 1)[0]
+        with torch.no_grad():
+            whole = float(task.loss(task.model(batch["input"]), batch))
+            parts = [{k: v[i : i + b] for k, v in batch.items()} for i in range(0, batch["input"].shape[0], b)]
+            summed = sum(float(task.loss(task.model(p["input"]), p)) for p in parts)
+            counted = sum(float(task.loss.count(p)) for p in parts), float(task.loss.count(batch))
+        if abs(whole - summed) <= 1e-9 * max(abs(whole), 1.0) and counted[0] == counted[1]:
+            return
+        self._explained(engine, Finding(
+            "loss normalisation: the task's loss is not a sum over units, so the result depends on how the batch is split",
+            f"on step 0's global batch, loss(all {batch['input'].shape[0]} samples) = {whole:.6g} but the sum over its micro-batches = {summed:.6g} "
+            f"(units {counted[1]:g} vs {counted[0]:g}); a mean per micro-batch gives a mean of micro-batch means",
+            "make the loss return the SUM of per-unit losses and count() the number of units (per_token=True for tokens); "
+            "the engine divides once by the global count, as the true batch does"))
+
+    # 5. -----------------------------------------------------------------------
+    def leftover(self) -> None:
+        for name in list(self.open):
+            cfg = self.runner.cfg
+            detail = ""
+            spread = self.runs[name].worker_spread
+            if spread > 0:
+                detail = f"; the workers' (or ranks') copies differ from each other by up to {spread:.3g}"
+            plain = Tolerance(self.tol.unit, self.tol.batch, 1.0)
+            if self.tol.scale < 1 and compare(name, self.runs[name], self.ref, plain).ok:
+                self._explained([name], Finding(
+                    "the tolerance is set below float rounding",
+                    f"{name} matches at check.tolerance_scale=1; at {self.tol.scale:g} the bound is tighter than the rounding "
+                    f"of {cfg.train.dtype} arithmetic{detail}",
+                    "use check.tolerance_scale=1 (the rounding-derived rule) or more"))
+                continue
+            if cfg.train.dtype == "float32" and not name.startswith("processes:"):
+                wide = self.runner.run(name, cfg=variant(cfg, **{"train.dtype": "float64"}), model_hook=self.hook)
+                wide_tol = Tolerance(2.0**-53, self.tol.batch, self.tol.scale)
+                if compare(name, wide, self.ref, wide_tol).ok:
+                    self._explained([name], Finding(
+                        "float32 rounding larger than the tolerance rule allows",
+                        f"{name} matches the true batch when rerun in float64{detail}",
+                        "raise check.tolerance_scale for this model, or train in float64 (train.dtype=float64) where it matters"))
+                    continue
+            first = compare(name, self.runs[name], self.ref, self.tol)
+            layers = [x.layer for x in first.layers if not x.ok]
+            self._explained([name], Finding(
+                f"{name} differs from the true batch for a reason none of the checks names",
+                f"layers off after step 1: {', '.join(layers) or 'none'}; trajectory first off at step "
+                f"{first.trajectory.first_bad_step if first.trajectory else '-'}{detail}",
+                "compare this path's step function with the protocol in scaledrill.check.threads and the pitfalls in REFERENCES.md"))
+
+    def run(self) -> list[Finding]:
+        from .diagnose_step import step_checks
+
+        self.randomness()
+        if self.open:
+            step_checks(self)
+        for check in (self.batchnorm, self.loss_normalisation, self.leftover):
+            if self.open:
+                check()
+        return self.findings
+
+
+def diagnose(runner, ref, tol, failing, runs) -> list[Finding]:
+    return Diagnosis(runner, ref, tol, failing, runs).run()

@@ -1,0 +1,49 @@
+"""The real-processes path: P operating-system processes over gloo or MPI.
+
+The recipe is laid out on P processes (V = W/P workers each) and started through
+the project's launcher, each process running `python -m scaledrill.check.worker
+DIR`. Rank 0 writes DIR/trajectory.pt (the same record as every other path), plus
+how far the other ranks' final parameters are from its own.
+"""
+
+from pathlib import Path
+
+import torch
+from omegaconf import OmegaConf
+
+from ..backends.launch import check_backend_available, launch
+from ..errors import ConfigError
+from .paths import engine_config
+from .trajectory import Trajectory
+
+RESULT = "trajectory.pt"
+
+
+def process_count(cfg) -> int | None:
+    """cfg.layout.procs when it is 2 or more, else the smallest divisor of W above 1 (None when W = 1)."""
+    W, P = cfg.layout.workers, cfg.layout.procs
+    if P >= 2:
+        return P
+    return next((p for p in range(2, W + 1) if W % p == 0), None)
+
+
+def available(backend: str, mpiexec: str | None = None) -> bool:
+    try:
+        check_backend_available(backend, mpiexec)
+        return True
+    except ConfigError:
+        return False
+
+
+def run_processes(cfg, backend: str, steps: int, run_dir: Path) -> Trajectory:
+    procs = process_count(cfg)
+    work = run_dir / f"processes-{backend}"
+    work.mkdir(parents=True, exist_ok=True)
+    laid = engine_config(cfg, cfg.train.grads, procs=procs, backend=backend)
+    OmegaConf.update(laid, "check.steps", steps, force_add=True)
+    (work / "config.yaml").write_text(OmegaConf.to_yaml(laid, resolve=True))
+    (work / RESULT).unlink(missing_ok=True)
+    launch(work, backend, procs, address=cfg.layout.get("address", "127.0.0.1"), mpiexec=cfg.layout.get("mpiexec"),
+           module="scaledrill.check.worker")  # a free port each time: the check starts several groups
+    return Trajectory.from_dict(torch.load(work / RESULT, weights_only=False))
+

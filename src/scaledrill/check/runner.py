@@ -1,0 +1,72 @@
+"""Which paths a check runs, and how to run any of them again as a variant.
+
+Path names: `accumulation`, `workers:fused|vmap|loop`, `processes:gloo|mpi`, and
+for a user's own step `step:accumulation` (one thread-worker, W·k micro-batches)
+and `step:workers` (W thread-workers). The diagnosis reruns paths with a changed
+model (dropout off), config (float64) or BatchNorm group through `run`.
+"""
+
+from pathlib import Path
+
+from .paths import GRAD_PATHS, accumulation, variant, virtual
+from .processes import available, process_count, run_processes
+from .reference import reference
+from .threads import load_step, run_step_function
+from .trajectory import Trajectory
+
+
+class Runner:
+    def __init__(self, cfg, settings, run_dir: Path):
+        self.cfg, self.settings, self.run_dir = cfg, settings, Path(run_dir)
+        self.step_fn = load_step(settings.step) if settings.step is not None else None
+        self.probes: dict = {}  # path name -> Probe of a user's step
+        self.variants = 0
+
+    def plan(self) -> tuple[list[str], dict[str, str]]:
+        """(paths to run, {skipped path: why})."""
+        s, run, skipped = self.settings, [], {}
+        wanted_grads = [g for g in GRAD_PATHS if g in s.paths]
+        if self.step_fn is not None:
+            run += ["step:accumulation"] if "accumulation" in s.paths else []
+            run += ["step:workers"] if wanted_grads else []
+            if "processes" in s.paths:
+                skipped["processes"] = "a custom step runs on W threads in one process"
+            return run, skipped
+        run += ["accumulation"] if "accumulation" in s.paths else []
+        for g in wanted_grads:
+            if g == "fused" and self.cfg.sync.get("bitwise", False):
+                skipped["workers:fused"] = "sync.bitwise needs each worker's gradient; fused gives a process sum"
+            else:
+                run.append(f"workers:{g}")
+        if "processes" in s.paths:
+            for backend in s.backends:
+                name = f"processes:{backend}"
+                if process_count(self.cfg) is None:
+                    skipped[name] = "one worker cannot be split over processes"
+                elif not available(backend, self.cfg.layout.get("mpiexec")):
+                    skipped[name] = f"{backend} is not available here"
+                else:
+                    run.append(name)
+        return run, skipped
+
+    def reference(self, batchnorm: str | None = None, model_hook=None) -> Trajectory:
+        return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook)
+
+    def run(self, name: str, cfg=None, model_hook=None, group_size: int | None = None) -> Trajectory:
+        cfg, steps = cfg or self.cfg, self.settings.steps
+        kind, _, detail = name.partition(":")
+        if kind == "accumulation":
+            return accumulation(cfg, steps, model_hook=model_hook, group_size=group_size)
+        if kind == "workers":
+            return virtual(cfg, detail, steps, model_hook=model_hook, group_size=group_size)
+        if kind == "processes":
+            self.variants += 1
+            where = self.run_dir if cfg is self.cfg else self.run_dir / f"variant-{self.variants}"
+            return run_processes(cfg, detail, steps, where)
+        if kind == "step":
+            L = cfg.layout
+            laid = cfg if detail == "workers" else variant(cfg, **{"layout.workers": 1, "layout.accum": L.workers * L.accum})
+            out, probe = run_step_function(laid, self.step_fn, steps, model_hook=model_hook, timeout_s=cfg.train.timeout_s)
+            self.probes.setdefault(name, probe)
+            return out
+        raise ValueError(f"unknown path {name!r}")

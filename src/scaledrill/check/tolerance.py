@@ -1,0 +1,108 @@
+"""Tolerances derived from floating-point rounding, and the comparison against the reference.
+
+Rule (gradients, per layer l):   tol_l = C · u · √B · max|g_ref,l| · s
+Rule (parameters after step t):  tol_t = C · u · √B · t · max|θ_ref,t| · s
+
+u is the unit roundoff of the dtype the path computes in (2⁻²⁴ for float32, 2⁻⁵³
+for float64), B the global batch, s = check.tolerance_scale and C = 32. Why: each
+gradient entry is a sum over B per-sample terms; with rounding errors of size
+u·|term| that do not all line up, the sum's error grows like √B·u times the
+entries' scale (the rule of thumb for recursive summation in Higham, "Accuracy and
+Stability of Numerical Algorithms", 2nd ed., §2.8, made rigorous by Higham & Mary
+2019, SIAM J. Sci. Comput.; section numbers from memory). C covers the rounding inside
+each sample's forward and backward; on the demo tasks the largest error seen is
+below 2·u·√B·max|g|, so C = 32 leaves a margin of 16 while a real mistake (a
+wrong normalisation, a clip per micro-batch, a BatchNorm over other samples) is
+off by 10⁻³ to 1 relative. Parameters move by a learning rate times gradients whose
+errors add up step after step, so their tolerance grows linearly with t.
+"""
+
+import math
+from dataclasses import dataclass, field
+
+import torch
+
+C = 32.0
+UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}
+RULE = "gradient: tol = C·u·√B·max|g_ref| per layer; parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"
+
+
+@dataclass
+class LayerResult:
+    layer: str
+    max_abs: float
+    max_rel: float
+    tolerance: float
+    ok: bool
+
+
+@dataclass
+class TrajectoryResult:
+    steps: int
+    max_abs: float
+    tolerance: float
+    ok: bool
+    first_bad_step: int | None = None
+
+
+@dataclass
+class PathResult:
+    name: str
+    layers: list[LayerResult] = field(default_factory=list)
+    trajectory: TrajectoryResult | None = None
+    note: str = ""  # e.g. why a path did not run
+
+    @property
+    def ok(self) -> bool:
+        return all(x.ok for x in self.layers) and (self.trajectory is None or self.trajectory.ok)
+
+    def to_json(self) -> dict:
+        return {
+            "name": self.name,
+            "ok": self.ok,
+            "layers": [vars(x) for x in self.layers],
+            "trajectory": None if self.trajectory is None else {k: v for k, v in vars(self.trajectory).items() if k != "first_bad_step"},
+        }
+
+
+@dataclass(frozen=True)
+class Tolerance:
+    unit: float  # u
+    batch: int  # B
+    scale: float = 1.0  # check.tolerance_scale
+
+    @classmethod
+    def for_run(cls, cfg, scale: float) -> "Tolerance":
+        L = cfg.layout
+        return cls(UNIT_ROUNDOFF[cfg.train.dtype], L.workers * L.micro_batch * L.accum, scale)
+
+    def __call__(self, magnitude: float, steps: int = 1) -> float:
+        return C * self.unit * math.sqrt(self.batch) * steps * magnitude * self.scale
+
+
+def compare_grads(names, grads, ref, tol: Tolerance) -> list[LayerResult]:
+    out = []
+    for name, g, r in zip(names, grads, ref):
+        diff = float((g - r).abs().max())
+        size = float(r.abs().max())
+        bound = tol(size)
+        rel = diff / size if size > 0 else (0.0 if diff == 0 else math.inf)
+        out.append(LayerResult(name, diff, rel, bound, diff <= bound))
+    return out
+
+
+def compare_params(params, ref, tol: Tolerance) -> TrajectoryResult:
+    """Largest parameter error over all steps; each step t is held to its own tol_t."""
+    worst, worst_bound, first_bad = 0.0, 0.0, None
+    for t, (mine, theirs) in enumerate(zip(params, ref), start=1):
+        diff = max(float((a - b).abs().max()) for a, b in zip(mine, theirs))
+        bound = tol(max(float(b.abs().max()) for b in theirs), steps=t)
+        if diff > bound and first_bad is None:
+            first_bad = t
+        worst, worst_bound = max(worst, diff), bound
+    return TrajectoryResult(len(params), worst, worst_bound, first_bad is None, first_bad)
+
+
+def compare(name: str, run, ref, tol: Tolerance) -> PathResult:
+    """PathResult of Trajectory `run` against the reference Trajectory `ref`."""
+    return PathResult(name, compare_grads(run.names, run.grads, ref.grads, tol), compare_params(run.params, ref.params, tol))
