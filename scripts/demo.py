@@ -35,7 +35,7 @@ def step(title: str, *args: str) -> None:
 def main() -> None:
     out = ROOT / "runs" / f"demo-{time.strftime('%Y%m%d-%H%M%S')}"
     step("1. check: do accumulation, virtual workers and processes give the true large-batch gradient?",
-         "check", "task=digits", "layout.workers=8", "layout.procs=2", "layout.micro_batch=8", "layout.accum=2",
+         "check", "task=digits", "layout.workers=8", "layout.procs=2", "layout.backend=gloo", "layout.micro_batch=8", "layout.accum=2",
          f"hydra.run.dir={out}/check")
     step("2a. ladder with SGD + momentum (square-root lr scaling)",
          "ladder", *LADDER, "optim=sgd", "optim.lr=0.05", f"hydra.run.dir={out}/ladder-sgd")
