@@ -1,0 +1,257 @@
+"""`scaledrill ladder`: the recipe at growing global batches, each rung to the target.
+
+Why: a recipe stops scaling somewhere. Running it at B0·2^i to a fixed target and
+counting the steps shows where doubling the batch stops halving the steps; the
+fit of McCandlish et al. 2018 (fit.py) turns the counts into S_min, E_min and the
+critical batch, set beside the gradient noise scale each rung measured.
+
+Steps:
+1. plan and check every rung (rungs.py) before anything trains;
+2. run each rung under the run's scaling rule into LADDER_DIR/rung-B<B>/
+   (summary.json, run.sqlite), stopping at the target or at the sample budget;
+   the local backend trains in this process, gloo and mpi through `run_verb`;
+3. optionally search the rung's lr window (search.py);
+4. after every rung rewrite ladder.json atomically, so finished rungs survive a
+   later failure; a rung that raises is recorded with its error and the ladder
+   goes on (bad configuration, ConfigError, stops it);
+5. print the table and the fit.
+"""
+
+import math
+import statistics
+import time
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from multiprocessing import get_context
+from pathlib import Path
+
+from omegaconf import OmegaConf
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+from rich.table import Table
+
+from ..backends import LocalCollective
+from ..errors import ConfigError
+from ..optim.scaling import scaled_lr
+from ..runs import prepare_run_dir, run_verb, write_json
+from .fit import fit_tradeoff, regime
+from .rungs import TRAIN_LOSS, Plan, Rung, Watch, plan_ladder, rung_config
+
+
+def rung_lr(cfg) -> float:
+    """The peak rate the scaling rule gives the rung's global batch."""
+    s, L = cfg.scaling, cfg.layout
+    base = None if s.rule == "none" else s.base_batch
+    return scaled_lr(s.rule, s.base_lr, base, L.workers * L.micro_batch * L.accum, s.get("exponent", 1.0))
+
+
+def _in_process(cfg, plan: Plan, run_dir: Path, tick) -> tuple[dict, Watch]:
+    from ..engine import run_training
+
+    prepare_run_dir(run_dir, cfg)
+    watch = Watch(plan.target, plan.check_every)
+
+    def on_step(trainer, record):
+        tick(trainer.step_index)
+        return watch(trainer, record)
+
+    collective = LocalCollective()
+    try:
+        summary = run_training(cfg, collective, run_dir=run_dir, on_step=on_step)
+    finally:
+        collective.close()
+    write_json(run_dir / "summary.json", summary)
+    return summary, watch
+
+
+def _launched(cfg, plan: Plan, run_dir: Path) -> tuple[dict, Watch]:
+    """gloo/mpi rungs cannot stop at the target; read the first hit from their history."""
+    from ..telemetry.store import read_scalars
+
+    cfg.train.eval_every = plan.check_every
+    summary = run_verb(cfg, run_dir)
+    if plan.target.metric == TRAIN_LOSS:
+        steps, values = read_scalars(run_dir / "run.sqlite")["loss"]
+        pairs = [(int(s) + 1, float(v)) for s, v in zip(steps, values) if (s + 1) % plan.check_every == 0]
+    else:
+        pairs = sorted((int(k), v.get(plan.target.metric, math.nan)) for k, v in summary["eval_history"].items())
+    watch = Watch(plan.target, plan.check_every)
+    for step, value in pairs:
+        watch.metric = value
+        if plan.target.met(value):
+            watch.reached_step = step
+            break
+    return summary, watch
+
+
+def run_rung(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: None, lr: float | None = None) -> dict:
+    """Train one rung (at `lr` instead of the scaling rule's rate when given); the
+    record of ladder.json, with an `error` key if it raised."""
+    run_cfg = rung_config(cfg, rung, lr=lr)
+    run_dir = ladder_dir / rung.name
+    out = {
+        "global_batch": rung.global_batch, "workers": rung.workers, "micro_batch": cfg.layout.micro_batch,
+        "accum": rung.accum, "lr": rung_lr(run_cfg), "steps_to_target": None, "samples_to_target": None,
+        "final_metric": None, "diverged": False, "noise_scale": None, "wall_seconds": None, "regime": None,
+        "run_dir": str(run_dir),
+    }
+    started = time.perf_counter()
+    try:
+        if run_cfg.layout.backend == "local":
+            summary, watch = _in_process(run_cfg, plan, run_dir, tick)
+        else:
+            summary, watch = _launched(run_cfg, plan, run_dir)
+    except (ConfigError, KeyboardInterrupt):
+        raise
+    except Exception as err:  # noqa: BLE001 - recorded; the ladder goes on
+        out.update(error=f"{type(err).__name__}: {err}", wall_seconds=time.perf_counter() - started)
+        return out
+    reached = watch.reached_step
+    final = watch.metric if watch.metric is not None else summary.get("final_loss")
+    out.update(
+        lr=summary.get("peak_lr", out["lr"]), steps_to_target=reached,
+        samples_to_target=None if reached is None else reached * rung.global_batch, final_metric=final,
+        diverged=bool(summary.get("diverged") or watch.diverged or (final is not None and not math.isfinite(final))),
+        noise_scale=summary.get("noise_scale"), wall_seconds=summary.get("wall_seconds"),
+    )
+    return out
+
+
+def _rung_and_search(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: None) -> tuple[dict, dict | None]:
+    result = run_rung(cfg, plan, rung, ladder_dir, tick)
+    if not cfg.ladder.search.enabled or result.get("error"):
+        return result, None
+    from .search import search_lr
+
+    return result, search_lr(cfg, plan, rung, result["lr"]).to_json(plan.target.mode)
+
+
+def _job(container: dict, plan: Plan, rung: Rung, ladder_dir: str) -> tuple[dict, dict | None]:
+    """One rung in a worker process of `ladder.parallel`."""
+    import torch
+
+    torch.set_num_threads(1)
+    return _rung_and_search(OmegaConf.create(container), plan, rung, Path(ladder_dir))
+
+
+def _finite(value):
+    return value if value is not None and math.isfinite(value) else None
+
+
+def ladder_json(plan: Plan, results: list[dict], searches: dict | None) -> dict:
+    """The ladder.json payload: rungs by batch, the fit over rungs that reached the target."""
+    rungs = sorted(results, key=lambda r: r["global_batch"])
+    hit = [r for r in rungs if r["steps_to_target"] and not r["diverged"] and not r.get("error")]
+    fit = fit_tradeoff([r["global_batch"] for r in hit], [r["steps_to_target"] for r in hit]) if len(hit) >= 2 else None
+    for r in rungs:
+        r["regime"] = regime(r["global_batch"], fit) if fit and not r.get("error") else None
+    noise = [r["noise_scale"] for r in rungs if r.get("noise_scale") is not None]
+    return {
+        "mode": plan.mode,
+        "target": plan.target.to_json(),
+        "rungs": rungs,
+        "fit": None if fit is None else {k: _finite(getattr(fit, k)) for k in ("s_min", "e_min", "b_noise", "b_crit", "residual")},
+        "noise_scale_measured": statistics.median(noise) if noise else None,
+        "search": None if searches is None else {str(b): searches[b] for b in sorted(searches)},
+    }
+
+
+class Outcome:
+    """What the verb returns: the payload, and a failing status when any rung raised."""
+
+    def __init__(self, payload: dict):
+        self.payload = payload
+        self.exit_code = 1 if any(r.get("error") for r in payload["rungs"]) else 0
+
+
+def ladder_verb(cfg, run_dir: Path) -> Outcome:
+    cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    plan = plan_ladder(cfg)
+    if cfg.ladder.search.enabled:
+        from .search import SearchSettings
+
+        SearchSettings.from_config(cfg.ladder.search, plan.check_every)  # bad settings fail before any rung trains
+    if (run_dir / "ladder.json").exists():
+        raise ConfigError("hydra.run.dir", f"{run_dir} already holds a ladder; choose a new directory", str(run_dir))
+    run_dir.mkdir(parents=True, exist_ok=True)
+    results: list[dict] = []
+    searches = {} if cfg.ladder.search.enabled else None
+
+    def keep(result: dict, search: dict | None) -> None:
+        results.append(result)
+        if search is not None:
+            searches[result["global_batch"]] = search
+        write_json(run_dir / "ladder.json", ladder_json(plan, results, searches))
+
+    with LadderDisplay(plan, enabled=bool(cfg.train.progress)) as display:
+        if cfg.ladder.parallel == 1:
+            for rung in plan.rungs:
+                keep(*_rung_and_search(cfg, plan, rung, run_dir, display.start(rung)))
+                display.done(results[-1])
+        else:
+            container = OmegaConf.to_container(cfg)
+            with ProcessPoolExecutor(cfg.ladder.parallel, mp_context=get_context("spawn")) as pool:
+                jobs = [pool.submit(_job, container, plan, rung, str(run_dir)) for rung in plan.rungs]
+                for job in as_completed(jobs):
+                    keep(*job.result())
+                    display.done(results[-1])
+    payload = ladder_json(plan, results, searches)
+    Console().print(render_ladder(payload))
+    return Outcome(payload)
+
+
+class LadderDisplay:
+    """A bar over the rungs and one over the current rung's steps (stderr)."""
+
+    def __init__(self, plan: Plan, enabled: bool):
+        self.plan, self.enabled, self.bar = plan, enabled, None
+
+    def __enter__(self):
+        if self.enabled:
+            self.bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), console=Console(stderr=True))
+            self.bar.__enter__()
+            self.rungs = self.bar.add_task("[bold]ladder", total=len(self.plan.rungs))
+            self.steps = self.bar.add_task("rung", total=1, visible=False)
+        return self
+
+    def start(self, rung: Rung):
+        if self.bar is None:
+            return lambda step: None
+        self.bar.reset(self.steps, total=rung.steps, description=f"B={rung.global_batch} steps", visible=True)
+        return lambda step: self.bar.update(self.steps, completed=step)
+
+    def done(self, result: dict) -> None:
+        if self.bar is not None:
+            self.bar.advance(self.rungs)
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.__exit__(*exc)
+        return False
+
+
+def _g(value, fmt: str = ".4g") -> str:
+    return "-" if value is None else format(value, fmt)
+
+
+def render_ladder(payload: dict) -> Table:
+    t = payload["target"]
+    goal = "no target" if t["value"] is None else f"{t['metric']} {t['mode']} {t['value']:g}"
+    table = Table(title=f"ladder (mode={payload['mode']}, {goal})")
+    for col in ("B", "W·b·k", "lr", "steps", "samples", "final", "diverged", "noise scale", "regime", "wall s"):
+        table.add_column(col, justify="right")
+    for r in payload["rungs"]:
+        steps = r.get("error") or _g(r["steps_to_target"], "d")
+        table.add_row(
+            str(r["global_batch"]), f"{r['workers']}·{r['micro_batch']}·{r['accum']}", _g(r["lr"]), steps,
+            _g(r["samples_to_target"], ","), _g(r["final_metric"]), "yes" if r["diverged"] else "no",
+            _g(r["noise_scale"], ".3g"), r["regime"] or "-", _g(r["wall_seconds"], ".1f"),
+        )
+    fit, noise = payload["fit"], payload["noise_scale_measured"]
+    if fit:
+        table.caption = (
+            f"S_min={_g(fit['s_min'])}  E_min={_g(fit['e_min'])}  B_crit={_g(fit['b_crit'])}  "
+            f"measured noise scale (median)={_g(noise)}  (McCandlish et al. 2018: B_crit ≈ B_noise)"
+        )
+    else:
+        table.caption = "no fit: fewer than two rungs reached the target"
+    return table

@@ -1,0 +1,204 @@
+"""The plan of a batch-size ladder: which layout each rung runs, for how long, to what target.
+
+Why two ways to grow the batch: `mode=workers` keeps the per-worker batch b and
+adds workers; `mode=accum` keeps the workers and accumulates more micro-batches.
+Both give the same global batch B, and with exact averaging the same gradients,
+but not the same run wherever a worker's own computation matters: compression
+and error feedback act on each worker's gradient, and BatchNorm statistics and
+the noise-scale estimate depend on what one worker sees. Run both when the
+recipe uses either.
+
+Everything is checked here, for every rung, before the first rung trains: a bad
+ladder fails at once with the dotted key, not halfway through.
+"""
+
+import math
+import os
+from dataclasses import dataclass
+
+from omegaconf import OmegaConf
+
+from ..errors import ConfigError
+from ..validate import validate_run
+
+MODES = ("workers", "accum")
+TRAIN_LOSS = "train_loss"  # the target metric that reads the step's training loss instead of an evaluation
+
+
+@dataclass(frozen=True)
+class Rung:
+    global_batch: int
+    workers: int
+    accum: int
+    steps: int  # the rung's optimizer steps: sample budget / B, capped by ladder.max_steps
+
+    @property
+    def name(self) -> str:
+        return f"rung-B{self.global_batch:04d}"
+
+
+@dataclass(frozen=True)
+class Target:
+    metric: str  # an evaluation metric of the task (loss, accuracy) or train_loss
+    value: float | None  # None: no target, each rung runs its budget
+    mode: str  # below | above
+
+    def met(self, value: float) -> bool:
+        if self.value is None or not math.isfinite(value):
+            return False
+        return value <= self.value if self.mode == "below" else value >= self.value
+
+    def to_json(self) -> dict:
+        return {"metric": self.metric, "value": self.value, "mode": self.mode}
+
+
+@dataclass(frozen=True)
+class Plan:
+    mode: str
+    target: Target
+    check_every: int
+    rungs: list[Rung]
+
+
+def _whole(node, key: str, allow_none: bool = False) -> int | None:
+    value = node.get(key)
+    if value is None and allow_none:
+        return None
+    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+        raise ConfigError(f"ladder.{key}", "must be a positive whole number" + (" or null" if allow_none else ""), value)
+    return value
+
+
+def read_target(node) -> Target:
+    metric, value, mode = node.get("metric"), node.get("value"), node.get("mode")
+    if not isinstance(metric, str) or not metric:
+        raise ConfigError("ladder.target.metric", f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}", metric)
+    if value is not None and (not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value)):
+        raise ConfigError("ladder.target.value", "must be a finite number or null", value)
+    if mode not in ("below", "above"):
+        raise ConfigError("ladder.target.mode", "must be below or above", mode)
+    return Target(metric, None if value is None else float(value), mode)
+
+
+def batches_of(cfg) -> list[int]:
+    """B0·2^i for i < ladder.rungs, B0 the layout's global batch; or ladder.batches as given."""
+    node = cfg.ladder
+    if node.get("batches") is not None:
+        batches = list(node.batches)
+        if not batches or any(not isinstance(b, int) or isinstance(b, bool) or b < 1 for b in batches):
+            raise ConfigError("ladder.batches", "must be a non-empty list of positive whole numbers", batches)
+        if len(set(batches)) != len(batches):
+            raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
+        return sorted(batches)
+    count = _whole(node, "rungs")
+    L = cfg.layout
+    return [L.workers * L.micro_batch * L.accum * 2**i for i in range(count)]
+
+
+def layout_of(cfg, mode: str, batch: int) -> tuple[int, int]:
+    """(workers, accum) of the rung at global batch `batch`."""
+    L = cfg.layout
+    fixed = L.micro_batch * L.accum if mode == "workers" else L.workers * L.micro_batch
+    if batch % fixed:
+        what = "layout.micro_batch·layout.accum" if mode == "workers" else "layout.workers·layout.micro_batch"
+        raise ConfigError("ladder.batches", f"every batch must be a multiple of {what}={fixed} in mode={mode}", batch)
+    return (batch // fixed, L.accum) if mode == "workers" else (L.workers, batch // fixed)
+
+
+def steps_of(cfg, batch: int) -> int:
+    cap = _whole(cfg.ladder, "max_steps", allow_none=True) or cfg.train.steps
+    budget = _whole(cfg.ladder, "max_samples", allow_none=True)
+    if budget is None:
+        return cap
+    if budget < batch:
+        raise ConfigError("ladder.max_samples", f"the sample budget is smaller than one global batch of rung B={batch}", budget)
+    return min(cap, budget // batch)
+
+
+def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = None, local: bool = False):
+    """The run config of one rung; `lr` replaces the scaling rule's peak rate, `local`
+    runs the same W, b, k in one process (layout invariance makes it the same run)."""
+    out = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    out.pop("ladder", None)
+    out.layout.workers, out.layout.accum, out.train.steps = rung.workers, rung.accum, rung.steps
+    if lr is not None:
+        out.scaling.rule, out.scaling.base_lr, out.scaling.base_batch, out.optim.lr = "none", float(lr), None, float(lr)
+    if warmup is not None:
+        out.schedule.warmup_steps, out.schedule.warmup_epochs = int(warmup), None
+    if local:
+        out.layout.procs, out.layout.backend = 1, "local"
+    return out
+
+
+def plan_ladder(cfg) -> Plan:
+    """Check the ladder and every rung's run config; raise ConfigError naming the key."""
+    node = cfg.ladder
+    if node.get("mode") not in MODES:
+        raise ConfigError("ladder.mode", f"must be one of {', '.join(MODES)}", node.get("mode"))
+    target = read_target(node.target)
+    check_every = _whole(node, "check_every")
+    parallel = _whole(node, "parallel")
+    if parallel > (os.cpu_count() or 1):
+        raise ConfigError("ladder.parallel", f"must be at most the {os.cpu_count()} cores of this machine", parallel)
+    rungs = []
+    for batch in batches_of(cfg):
+        workers, accum = layout_of(cfg, node.mode, batch)
+        rung = Rung(batch, workers, accum, steps_of(cfg, batch))
+        try:
+            validate_run(rung_config(cfg, rung))
+        except ConfigError as err:
+            rule = f"{err.rule} — at rung B={batch}, where mode={node.mode} gives W={workers}, k={accum}, {rung.steps} steps"
+            raise ConfigError(err.key, rule, err.value) from None
+        rungs.append(rung)
+    return Plan(node.mode, target, check_every, rungs)
+
+
+@dataclass
+class Watch:
+    """Follows one run toward the target; as the engine's on_step callback it says when to stop.
+
+    Checks the target every `check_every` steps and at the last step. Stops at once
+    when the training loss is not finite or exceeds `explode` times its first value
+    (a diverging run gains nothing from more steps). `report(step, value)` sees every
+    checked value and may return True to stop the run (a pruner's verdict).
+    """
+
+    target: Target
+    check_every: int
+    explode: float | None = None
+    report: object = None
+    reached_step: int | None = None
+    metric: float | None = None
+    diverged: str | None = None
+    stopped_by_report: bool = False
+    first_loss: float | None = None
+
+    def __call__(self, trainer, record) -> bool:
+        step, loss = trainer.step_index, record.loss
+        self.first_loss = loss if self.first_loss is None else self.first_loss
+        if not math.isfinite(loss):
+            self.diverged = f"training loss {loss} at step {step}"
+        elif self.explode and loss > self.explode * abs(self.first_loss):
+            self.diverged = f"training loss {loss:.4g} at step {step} exceeds {self.explode:g}× its first value {self.first_loss:.4g}"
+        if self.diverged:
+            return True
+        if step % self.check_every and step != trainer.cfg.train.steps:
+            return False
+        self.metric = loss if self.target.metric == TRAIN_LOSS else self._evaluate(trainer)
+        if not math.isfinite(self.metric):
+            self.diverged = f"{self.target.metric} is {self.metric} at step {step}"
+            return True
+        if self.target.met(self.metric):
+            self.reached_step = step
+            return True
+        if self.report is not None and self.report(step, self.metric):
+            self.stopped_by_report = True
+            return True
+        return False
+
+    def _evaluate(self, trainer) -> float:
+        metrics = trainer.evaluate()
+        if self.target.metric not in metrics:
+            known = ", ".join([*metrics, TRAIN_LOSS])
+            raise ConfigError("ladder.target.metric", f"the task {trainer.task.name} reports {known}", self.target.metric)
+        return metrics[self.target.metric]

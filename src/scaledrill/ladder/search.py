@@ -1,0 +1,164 @@
+"""The learning-rate window of one rung, by a budgeted search (successive halving or Hyperband).
+
+Why: the rate a scaling rule hands a rung is a guess; the rates that actually
+reach the target at that batch form a window that narrows as the batch grows,
+and what it costs to find it is part of what a larger batch costs. Trials are
+cheap to stop: most bad rates look bad after a few checks.
+
+Steps:
+1. sample lr log-uniformly in [lr·lo, lr·hi] around the rung's rate (and, with
+   `warmup_max` > 0, warmup steps in [0, warmup_max]) with Optuna's TPE sampler,
+   seeded, trials one after another, so the search is reproducible;
+2. train the trial at the rung's W, b, k in this process (layout invariance:
+   the same run as on P processes), checking the target metric every
+   `ladder.check_every` steps and reporting it to the pruner;
+3. stop a trial at once when its loss is not finite or exceeds `explode` times
+   its first value (counted as diverged), when the pruner says so (Optuna's
+   `SuccessiveHalvingPruner` or `HyperbandPruner`, reduction factor η), or at
+   the target;
+4. the window spans the rates that reached the target; the best rate reached it
+   in the fewest steps (without a hit: the best final metric).
+
+References: Jamieson & Talwalkar 2016 (successive halving); Li et al. 2018 (Hyperband).
+"""
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import optuna
+
+from ..backends import LocalCollective
+from ..errors import ConfigError
+from .rungs import Plan, Rung, Watch, rung_config
+
+PRUNERS = ("halving", "hyperband")
+
+
+@dataclass
+class Trial:
+    lr: float
+    reached: bool = False
+    diverged: bool = False
+    pruned: bool = False
+    steps: int = 0
+    metric: float | None = None
+    warmup: int | None = None
+
+
+@dataclass
+class SearchResult:
+    global_batch: int
+    trials: list[Trial] = field(default_factory=list)
+
+    @property
+    def samples_spent(self) -> int:
+        return sum(t.steps for t in self.trials) * self.global_batch
+
+    def window(self) -> list[float] | None:
+        hit = [t.lr for t in self.trials if t.reached]
+        return [min(hit), max(hit)] if hit else None
+
+    def best(self, mode: str) -> Trial | None:
+        hit = [t for t in self.trials if t.reached]
+        if hit:
+            return min(hit, key=lambda t: (t.steps, t.metric if mode == "below" else -t.metric))
+        sign = 1.0 if mode == "below" else -1.0
+        done = [t for t in self.trials if not t.diverged and t.metric is not None and math.isfinite(t.metric)]
+        return min(done, key=lambda t: sign * t.metric) if done else None
+
+    def to_json(self, mode: str = "below") -> dict:
+        best = self.best(mode)
+        return {
+            "best_lr": None if best is None else best.lr,
+            "window": self.window(),
+            "trials": [asdict(t) for t in self.trials],
+            "pruned": sum(t.pruned for t in self.trials),
+            "diverged": sum(t.diverged for t in self.trials),
+            "samples_spent": self.samples_spent,
+        }
+
+
+@dataclass(frozen=True)
+class SearchSettings:
+    trials: int
+    pruner: str
+    reduction: int
+    min_steps: int
+    lo: float
+    hi: float
+    warmup_max: int
+    explode: float | None
+    seed: int
+
+    @classmethod
+    def from_config(cls, node, check_every: int) -> "SearchSettings":
+        def positive(key, whole=False, allow_none=False):
+            value = node.get(key)
+            if value is None and allow_none:
+                return None
+            ok = isinstance(value, int) if whole else isinstance(value, (int, float))
+            if not ok or isinstance(value, bool) or value <= 0:
+                raise ConfigError(f"ladder.search.{key}", f"must be a positive {'whole ' if whole else ''}number", value)
+            return value
+
+        if node.get("pruner") not in PRUNERS:
+            raise ConfigError("ladder.search.pruner", f"must be one of {', '.join(PRUNERS)}", node.get("pruner"))
+        lo, hi = positive("lo"), positive("hi")
+        if lo >= hi:
+            raise ConfigError("ladder.search.hi", f"must exceed ladder.search.lo={lo}", hi)
+        warmup = node.get("warmup_max", 0)
+        if not isinstance(warmup, int) or isinstance(warmup, bool) or warmup < 0:
+            raise ConfigError("ladder.search.warmup_max", "must be a whole number >= 0", warmup)
+        reduction = positive("reduction", whole=True)
+        if reduction < 2:
+            raise ConfigError("ladder.search.reduction", "must be at least 2", reduction)
+        seed = node.get("seed", 0)
+        if not isinstance(seed, int) or isinstance(seed, bool):
+            raise ConfigError("ladder.search.seed", "must be a whole number", seed)
+        return cls(
+            trials=positive("trials", whole=True), pruner=node.pruner, reduction=reduction,
+            min_steps=positive("min_steps", whole=True, allow_none=True) or check_every, lo=float(lo), hi=float(hi),
+            warmup_max=warmup, explode=positive("explode", allow_none=True), seed=seed,
+        )
+
+    def pruner_for(self, steps: int) -> optuna.pruners.BasePruner:
+        if self.pruner == "halving":
+            return optuna.pruners.SuccessiveHalvingPruner(min_resource=self.min_steps, reduction_factor=self.reduction)
+        return optuna.pruners.HyperbandPruner(min_resource=self.min_steps, max_resource=steps, reduction_factor=self.reduction)
+
+
+def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings | None = None) -> SearchResult:
+    """Search the lr window of `rung` around its rate `lr`; see the module docstring."""
+    from ..engine import run_training
+
+    settings = settings or SearchSettings.from_config(cfg.ladder.search, plan.check_every)
+    result = SearchResult(rung.global_batch)
+
+    def objective(trial: optuna.Trial) -> float:
+        rate = trial.suggest_float("lr", lr * settings.lo, lr * settings.hi, log=True)
+        warmup = trial.suggest_int("warmup", 0, min(settings.warmup_max, rung.steps)) if settings.warmup_max else None
+        record = Trial(lr=rate, warmup=warmup)
+        result.trials.append(record)
+
+        def report(step: int, value: float) -> bool:
+            trial.report(value, step)
+            return trial.should_prune()
+
+        watch = Watch(plan.target, plan.check_every, explode=settings.explode, report=report)
+        summary = run_training(rung_config(cfg, rung, lr=rate, warmup=warmup, local=True), LocalCollective(), on_step=watch)
+        record.steps, record.metric = summary["steps"], watch.metric
+        record.reached = watch.reached_step is not None
+        record.diverged = bool(watch.diverged or summary["diverged"])
+        record.pruned = watch.stopped_by_report and not record.diverged
+        if record.diverged or record.pruned:
+            raise optuna.TrialPruned()
+        return watch.metric
+
+    optuna.logging.set_verbosity(optuna.logging.WARNING)
+    study = optuna.create_study(
+        direction="minimize" if plan.target.mode == "below" else "maximize",
+        sampler=optuna.samplers.TPESampler(seed=settings.seed),
+        pruner=settings.pruner_for(rung.steps),
+    )
+    study.optimize(objective, n_trials=settings.trials, catch=())
+    return result
