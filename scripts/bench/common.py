@@ -1,0 +1,35 @@
+"""What every benchmark needs: configs composed like the CLI, trainers, pinned threads."""
+
+import os
+from pathlib import Path
+
+import torch
+from hydra import compose, initialize_config_dir
+
+ROOT = Path(__file__).resolve().parents[2]
+CONFIGS = str(ROOT / "configs")
+
+# The setting of the issue: 64 workers of 8 samples, one optimizer step of B = 512.
+WORKERS, MICRO = 64, 8
+QUIET = ("telemetry.layer_every=0", "telemetry.noise_every=0", "train.progress=false")
+
+
+def pin_threads(threads: int) -> None:
+    """Fix intra-op threads in this process, so a child never grabs every core on its own."""
+    os.environ["OMP_NUM_THREADS"] = str(threads)
+    torch.set_num_threads(threads)
+
+
+def config(*overrides: str, workers: int = WORKERS, micro: int = MICRO):
+    """The `run` config with telemetry off and the given layout, plus `overrides` (later ones win)."""
+    base = [f"layout.workers={workers}", f"layout.micro_batch={micro}", *QUIET, *overrides]
+    with initialize_config_dir(CONFIGS, version_base=None):
+        return compose("run", overrides=base)
+
+
+def trainer(*overrides: str, workers: int = WORKERS, micro: int = MICRO, collective=None):
+    """A Trainer on one process (or on `collective`), built as `scaledrill run` would build it."""
+    from scaledrill.backends import LocalCollective
+    from scaledrill.engine import Trainer
+
+    return Trainer(config(*overrides, workers=workers, micro=micro), collective or LocalCollective())
