@@ -90,6 +90,8 @@ def main(argv: list[str] | None = None) -> None:
         print(usage())
         raise SystemExit(0 if argv else 2)
     verb, rest = argv[0], argv[1:]
+    if not sys.stdout.isatty():
+        os.environ.setdefault("COLUMNS", "160")  # tables in logs and pipes: do not squeeze them to 80 columns
     if verb not in VERBS:
         print(f"scaledrill: unknown verb {verb!r}\n\n{usage()}", file=sys.stderr)
         raise SystemExit(2)

@@ -114,24 +114,24 @@ class Trainer:
         self.comm.all_reduce(local)
         return float(local)
 
-    def _average_buffers(self) -> None:
-        """Running statistics follow the mean over all W workers (the mean over processes of process means).
-
-        One all-reduce per dtype for all of them, not one per buffer: a collective
-        costs a round trip between the processes however small it is. The values
-        are the same as one all-reduce per buffer (the same element-wise sums).
-        """
-        if self.comm.size == 1 or not self.grads.running_stats:
-            return
+    def _running_stats(self) -> list[torch.Tensor]:
         named = dict(self.model.named_buffers())
-        buffers = [named[n] for n in self.grads.running_stats]
-        for dtype in dict.fromkeys(b.dtype for b in buffers):  # first-seen order: the same in every process
-            group = [b for b in buffers if b.dtype == dtype]
-            flat = torch.cat([b.reshape(-1) for b in group])
-            self.comm.all_reduce(flat)
-            flat /= self.comm.size
-            for buf, part in zip(group, flat.split([b.numel() for b in group])):
-                buf.copy_(part.view_as(buf))
+        return [named[n] for n in self.grads.running_stats] if self.comm.size > 1 else []
+
+    def _share_scalars(self, values: list[float], buffers: list[torch.Tensor]) -> torch.Tensor:
+        """One all-reduce per step for everything small: the step's scalars and the
+        running statistics (averaged over processes, so they follow the mean over all
+        W workers). In float64, where the sum of P float32 values is exact, so the
+        average does not depend on the order the processes are summed in."""
+        parts = [torch.tensor(values, dtype=torch.float64)] + [b.detach().reshape(-1).double() for b in buffers]
+        shared = torch.cat(parts)
+        self.comm.all_reduce(shared)
+        offset = len(values)
+        with torch.no_grad():
+            for buf in buffers:
+                buf.copy_((shared[offset : offset + buf.numel()] / self.comm.size).view_as(buf))
+                offset += buf.numel()
+        return shared[: len(values)]
 
     def _noise_due(self, step: int) -> bool:
         every = self.noise_every
@@ -150,21 +150,16 @@ class Trainer:
         noise = self._noise_due(step)
         path = "vmap" if noise and self.path == "fused" else self.path
         result = self.grads.compute(micro, scale, path)
-        average = self.sync.reduce(result.local, self.workers, step)
-        self._average_buffers()
-
-        # One small all-reduce for the scalars: the loss and Σ_w |g_w|² (noise scale).
         flag = getattr(self, "stop_flag", None)
-        scalars = torch.tensor(
-            [result.loss_sum, float(result.local.double().square().sum()) if noise else 0.0, float(bool(flag and flag.raised))],
-            dtype=torch.float64,
-        )
-        self.comm.all_reduce(scalars)
+        local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
+        exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
+        average = self.sync.reduce(result.local, self.workers, step)
+        scalars = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self._running_stats())
         W = self.layout.workers
         small_sq = big_sq = None
         if noise:
             small_sq = float(scalars[1]) / W
-            big_sq = float(self._exact_average(result.local, average).double().square().sum())
+            big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum())
 
         write_grads(average, self.params)
         clip = self.clip_norm
@@ -194,13 +189,11 @@ class Trainer:
             interrupt=bool(scalars[2] > 0),
         )
 
-    def _exact_average(self, local: torch.Tensor, average: torch.Tensor) -> torch.Tensor:
-        """The uncompressed average of the same gradients (the sync result itself when sync is exact)."""
-        if self.cfg.sync.name == "exact":
-            return average
+    def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
+        """Σ over all workers of the uncompressed gradients: the noise scale's big batch."""
         exact = local.sum(0)
         self.comm.all_reduce(exact)
-        return exact / self.layout.workers
+        return exact
 
     # -- evaluation ----------------------------------------------------------
     @torch.no_grad()

@@ -55,10 +55,10 @@ def forecast_json(
 def _duration(seconds: float | None) -> str:
     if seconds is None:
         return "-"
-    for unit, size in (("d", 86400), ("h", 3600), ("min", 60), ("s", 1), ("ms", 1e-3)):
+    for unit, size in (("d", 86400), ("h", 3600), ("min", 60), ("s", 1), ("ms", 1e-3), ("µs", 1e-6)):
         if seconds >= size:
             return f"{seconds / size:.3g} {unit}"
-    return f"{seconds * 1e6:.3g} µs"
+    return f"{seconds * 1e9:.3g} ns"
 
 
 def render_forecast(doc: dict) -> Table:

@@ -34,6 +34,9 @@ def validate(cfg_telemetry) -> None:
     """Raise ConfigError naming the first bad key of the `telemetry` group."""
     _count(cfg_telemetry, "layer_every", 10, 0)
     _count(cfg_telemetry, "flush_every", 50, 1)
+    _count(cfg_telemetry, "noise_every", 25, 0)
+    if not isinstance(cfg_telemetry.get("tensorboard", False), bool):
+        raise ConfigError("telemetry.tensorboard", "must be true or false", cfg_telemetry.get("tensorboard"))
     NoiseScale(decay=cfg_telemetry.get("noise_decay", 0.95))  # checks telemetry.noise_decay
     validate_detect(cfg_telemetry)
     incident = cfg_telemetry.get("incident") or {}

@@ -10,6 +10,7 @@ from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from ..errors import ConfigError
 from .detectors import build_detectors
 from .incident import write_incident
 from .noise_scale import NoiseScale
@@ -40,6 +41,17 @@ class StepRecord:
         return out
 
 
+def open_event_writer(folder: Path):
+    """TensorBoard's writer (torch.utils.tensorboard), from the optional `tensorboard` extra."""
+    try:
+        from torch.utils.tensorboard import SummaryWriter
+    except ImportError:
+        raise ConfigError(
+            "telemetry.tensorboard", "needs the tensorboard package: pip install 'scaledrill[tensorboard]'", True
+        ) from None
+    return SummaryWriter(log_dir=str(folder))
+
+
 class Monitor:
     def __init__(self, cfg, run_dir: Path | None, rank: int, b_small: int, b_big: int, config_yaml: str):
         tel = cfg.telemetry
@@ -56,9 +68,12 @@ class Monitor:
         self.last_checkpoint: str | None = None
         self.incidents: list[str] = []
         self.store = None
+        self.events = None  # TensorBoard event files, when telemetry.tensorboard is on
         if rank == 0 and run_dir is not None:
             self.store = RunStore(run_dir / "run.sqlite", flush_every=tel.get("flush_every", 50))
             self.store.start("run", config_yaml)
+            if tel.get("tensorboard", False):
+                self.events = open_event_writer(run_dir / "tensorboard")
 
     def observe(self, record: StepRecord) -> str | None:
         """Log the step; return a detector's reason when one fires and the run should stop."""
@@ -76,6 +91,9 @@ class Monitor:
             self.store.log_scalars(record.step, scalars)
             if layers:
                 self.store.log_layers(record.step, layers)
+        if self.events is not None:
+            for name, value in scalars.items():
+                self.events.add_scalar(name, value, record.step)
         reasons = [r for r in (d.observe(record.step, scalars) for d in self.detectors) if r]
         if not reasons:
             return None
@@ -107,6 +125,9 @@ class Monitor:
             detector.load_state_dict(saved)
 
     def close(self, status: str) -> None:
+        if self.events is not None:
+            self.events.close()
+            self.events = None
         if self.store is not None:
             self.store.close(status)
             self.store = None
