@@ -126,13 +126,12 @@ def _write(path: Path, text: str) -> str:
     return str(path)
 
 
-def test_cli_writes_forecast_json_and_exits_2_on_a_bad_ladder(tmp_path, capsys):
-    from scaledrill.cli import main
+def test_cli_writes_forecast_json_and_exits_2_on_a_bad_ladder(tmp_path):
+    from conftest import run_cli
 
-    main(["forecast", "forecast.flops_per_sample=1e9", "forecast.grad_bytes=1e6", f"hydra.run.dir={tmp_path / 'ok'}"])
+    run_cli("forecast", "forecast.flops_per_sample=1e9", "forecast.grad_bytes=1e6", f"hydra.run.dir={tmp_path / 'ok'}", check=True)
     doc = json.loads((tmp_path / "ok" / "forecast.json").read_text())
     assert [r["global_batch"] for r in doc["rungs"]] == [256, 1024, 4096, 16384]
     assert doc["assumptions"]["flops_per_sample"] == 1e9
-    with pytest.raises(SystemExit) as bad:
-        main(["forecast", f"forecast.ladder={tmp_path / 'nowhere'}", f"hydra.run.dir={tmp_path / 'bad'}"])
-    assert bad.value.code == 2 and "forecast.ladder:" in capsys.readouterr().err
+    bad = run_cli("forecast", f"forecast.ladder={tmp_path / 'nowhere'}", f"hydra.run.dir={tmp_path / 'bad'}")
+    assert bad.returncode == 2 and "forecast.ladder:" in bad.stderr

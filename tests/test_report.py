@@ -7,7 +7,6 @@ from pathlib import Path
 import pytest
 from omegaconf import OmegaConf
 
-from scaledrill.cli import main
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
 from scaledrill.report import find_results, report_verb
@@ -260,15 +259,18 @@ def test_bad_path_names_the_key(tmp_path, path):
     assert err.value.key == "path"
 
 
-def test_cli_writes_only_the_report(tmp_path, monkeypatch, capsys):
+def test_cli_writes_only_the_report(tmp_path):
+    import subprocess
+    import sys
+
     run = make_check(tmp_path / "run", ok=True)  # no figures: this test is about the command line
     before = sorted(p.name for p in run.iterdir())
-    monkeypatch.chdir(tmp_path)
-    main(["report", str(run)])  # returns normally on success
-    assert capsys.readouterr().out.strip().endswith("report.html")
+    done = subprocess.run([sys.executable, "-m", "scaledrill.cli", "report", str(run)], cwd=tmp_path, capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip().endswith("report.html")
     assert sorted(p.name for p in run.iterdir()) == sorted([*before, "report.html"])
     assert sorted(p.name for p in tmp_path.iterdir()) == ["run"]  # no Hydra folder or log in the cwd
-    with pytest.raises(SystemExit) as bad:
-        main(["report", str(tmp_path / "nowhere")])
-    assert bad.value.code == 2 and "path: must be an existing directory" in capsys.readouterr().err
+    bad = subprocess.run([sys.executable, "-m", "scaledrill.cli", "report", str(tmp_path / "nowhere")], cwd=tmp_path,
+                         capture_output=True, text=True)
+    assert bad.returncode == 2 and "path: must be an existing directory" in bad.stderr
     assert not (tmp_path / "nowhere").exists()
