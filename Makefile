@@ -26,7 +26,7 @@ test: $(TSTAMP)
 	$(BIN)/python -m pytest
 
 bench: $(STAMP)
-	$(BIN)/python scripts/bench.py
+	$(BIN)/python scripts/bench
 
 clean:
 	rm -rf $(VENV) runs outputs
