@@ -22,6 +22,16 @@ class Empty:
     """State of a compressor that keeps none."""
 
 
+class Stateless:
+    """Base of the per-worker lossy methods that carry nothing from step to step."""
+
+    per_worker = True
+    lossless = False
+
+    def init(self, shapes, V, seed, dtype):
+        return Empty()
+
+
 @dataclass
 class Round:
     """What one step's compression may use.

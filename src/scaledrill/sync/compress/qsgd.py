@@ -19,18 +19,12 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Empty, Out
+from . import Out, Stateless
 
 
 @dataclass(frozen=True)
-class QSGD:
+class QSGD(Stateless):
     levels: int = 16
-
-    per_worker = True
-    lossless = False
-
-    def init(self, shapes, V, seed, dtype):
-        return Empty()
 
     def update(self, x, state, rnd):
         V, n = x.shape

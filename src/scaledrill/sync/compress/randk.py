@@ -16,21 +16,15 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Empty, Out, dense_bytes
+from . import Out, Stateless, dense_bytes
 from .topk import keep_count
 
 
 @dataclass(frozen=True)
-class RandK:
+class RandK(Stateless):
     fraction: float = 0.01
     count: int | None = None
     unbiased: bool = True
-
-    per_worker = True
-    lossless = False
-
-    def init(self, shapes, V, seed, dtype):
-        return Empty()
 
     def update(self, x, state, rnd):
         n = x.shape[1]

@@ -12,17 +12,11 @@ Steps, per worker, over its whole flat gradient:
 import math
 from dataclasses import dataclass
 
-from . import Empty, Out
+from . import Out, Stateless
 
 
 @dataclass(frozen=True)
-class ScaledSign:
-    per_worker = True
-    lossless = False
-
-    def init(self, shapes, V, seed, dtype):
-        return Empty()
-
+class ScaledSign(Stateless):
     def update(self, x, state, rnd):
         n = x.shape[1]
         scale = x.abs().sum(dim=1, keepdim=True) / n  # 1.

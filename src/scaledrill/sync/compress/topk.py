@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Empty, Out, dense_bytes
+from . import Out, Stateless, dense_bytes
 
 
 def keep_count(n: int, fraction: float, count: int | None) -> int:
@@ -26,15 +26,9 @@ def keep_count(n: int, fraction: float, count: int | None) -> int:
 
 
 @dataclass(frozen=True)
-class TopK:
+class TopK(Stateless):
     fraction: float = 0.01
     count: int | None = None
-
-    per_worker = True
-    lossless = False
-
-    def init(self, shapes, V, seed, dtype):
-        return Empty()
 
     def update(self, x, state, rnd):
         n = x.shape[1]
