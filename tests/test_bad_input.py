@@ -69,6 +69,7 @@ def _nan_data(tmp_path, finished):
 
 CASES = {
     "workers not a multiple of procs": (("layout.workers=6", "layout.procs=4", "layout.backend=gloo"), CONFIG, "layout.workers"),
+    "more processes than the cores can serve": (("layout.workers=512", "layout.procs=512", "layout.backend=gloo"), CONFIG, "layout.procs"),
     "unknown backend": (("layout.backend=tcp",), CONFIG, "layout.backend"),
     "wrong type": (("train.steps=many",), CONFIG, "train.steps"),
     "unknown optimizer": (("optim.name=rmsprop",), CONFIG, "optim"),

@@ -33,6 +33,21 @@ def prepare_run_dir(run_dir: Path, cfg) -> None:
     (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
 
 
+PROCS_PER_CORE = 16  # beyond this, processes on one machine mostly wait for a core
+
+
+def check_process_count(procs: int) -> None:
+    """Processes are for rehearsing the collectives; workers are for the arithmetic."""
+    cores = os.cpu_count() or 1
+    if procs > PROCS_PER_CORE * cores:
+        raise ConfigError(
+            "layout.procs",
+            f"{procs} processes on {cores} cores would spend their time waiting for a core; at most "
+            f"{PROCS_PER_CORE * cores} here — host more virtual workers per process instead",
+            procs,
+        )
+
+
 def run_as_rank(cfg, run_dir: Path, collective) -> dict:
     """Train as one process of the run (rank 0 writes the outputs)."""
     from .engine import run_training
@@ -57,6 +72,7 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
             prepare_run_dir(run_dir, cfg)
         collective.barrier()
         return run_as_rank(cfg, run_dir, collective)
+    check_process_count(layout.procs)
     where = cfg.layout
     check_backend_available(layout.backend, where.get("mpiexec"))
     if layout.backend == "gloo":
