@@ -11,9 +11,6 @@ their protocols. Every process runs this same loop on its own workers.
 """
 
 import hashlib
-import math
-import signal
-import threading
 import time
 from pathlib import Path
 
@@ -22,37 +19,21 @@ from omegaconf import OmegaConf
 
 from . import checkpoint
 from .backends import Collective
+from .data.batches import cast_batch, check_finite
 from .data.sampler import Sampler
 from .data.tasks import Task, build_task
-from .errors import ConfigError, DataError, Interrupted
+from .errors import ConfigError, Interrupted
 from .grads import GradComputer, flatten_params, write_grads
 from .layout import Layout
 from .models.ghost_bn import set_group_size
 from .optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from .signals import StopFlag
 from .sync import build_sync
+from .sync.summary import sync_summary
 from .telemetry.layers import layer_stats
 from .telemetry.monitor import Monitor, StepRecord
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
-
-
-def _cast_batch(batch: dict, dtype: torch.dtype) -> dict:
-    return {k: v.to(dtype) if v.is_floating_point() else v for k, v in batch.items()}
-
-
-def check_finite(batch: dict, index: torch.Tensor) -> None:
-    """Name the first sample whose input holds NaN or Inf (a clear error, not a NaN loss later).
-
-    A finite sum proves every value finite (NaN and Inf propagate through it), so
-    the per-sample search runs only when the sum is not finite (a bad value, or an
-    overflow of a sum of finite values, which the search then clears).
-    """
-    for key, value in batch.items():
-        if value.is_floating_point() and not math.isfinite(float(value.sum())):
-            bad = ~torch.isfinite(value.reshape(value.shape[0], -1)).all(dim=1)
-            if bad.any():
-                sample = int(index.reshape(-1)[bad.nonzero()[0, 0]])
-                raise DataError(f"training sample {sample} has a NaN or Inf in its {key!r} tensor")
 
 
 class Trainer:
@@ -103,7 +84,7 @@ class Trainer:
         for m in range(self.layout.accum):
             batch = self.task.data.train.take(index[m].reshape(-1))
             check_finite(batch, index[m])
-            micro.append(_cast_batch(batch, self.dtype))
+            micro.append(cast_batch(batch, self.dtype))
         return micro
 
     def _global_count(self, micro: list[dict]) -> float:
@@ -210,7 +191,7 @@ class Trainer:
             units = 0.0
             for start in range(0, test.size, chunk):
                 index = torch.arange(start, min(start + chunk, test.size))
-                batch = _cast_batch(test.take(index), self.dtype)
+                batch = cast_batch(test.take(index), self.dtype)
                 out = self.model(batch["input"])
                 units += float(loss.count(batch))
                 for k, v in loss.metrics(out, batch).items():
@@ -221,28 +202,6 @@ class Trainer:
 
     def params_l2(self) -> float:
         return float(flatten_params(self.params).double().norm())
-
-
-class StopFlag:
-    """Set by SIGINT/SIGTERM; processes agree on it through the step's scalar all-reduce."""
-
-    def __init__(self):
-        self.raised = False
-        self._previous = {}
-
-    def __enter__(self):
-        if threading.current_thread() is threading.main_thread():
-            for sig in (signal.SIGINT, signal.SIGTERM):
-                self._previous[sig] = signal.signal(sig, self._handle)
-        return self
-
-    def _handle(self, signum, frame):
-        self.raised = True
-
-    def __exit__(self, *exc):
-        for sig, handler in self._previous.items():
-            signal.signal(sig, handler)
-        return False
 
 
 def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dict:
@@ -325,20 +284,8 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
         "wall_seconds": time.perf_counter() - started,
     }
     summary.update(monitor.summary())
-    summary.update(sync_summary(cfg, records))
+    summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
     return summary
-
-
-def sync_summary(cfg, records: list[StepRecord]) -> dict:
-    stats = [r.sync for r in records if r.sync]
-    out = {"sync": cfg.sync.name}
-    if stats:
-        for key, name in (("wire_bytes_per_worker", "wire_bytes_per_worker_step"), ("compression_ratio", "compression_ratio")):
-            values = [s[key] for s in stats if key in s]
-            out[name] = sum(values) / len(values) if values else None
-        cos = [s["cosine_to_exact"] for s in stats if "cosine_to_exact" in s]
-        out["mean_cosine_to_exact"] = sum(cos) / len(cos) if cos else None
-    return out
 
 
 def config_yaml(cfg) -> str:
