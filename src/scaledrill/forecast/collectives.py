@@ -26,7 +26,7 @@ reducing n bytes locally costs n·γ. Each algorithm below is a sum of such term
 
 For p not a power of two, ⌈lg p⌉ rounds stand in for the extra fold-in and
 fold-out steps of Thakur et al. 2005: a simplification, slightly optimistic there.
-p = 1 costs nothing: there is no one to talk to.
+p = 1 costs nothing: there is no peer to exchange with.
 """
 
 import math
