@@ -5,7 +5,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-import pytest
 from hydra import compose, initialize_config_dir
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -26,7 +25,3 @@ def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bo
         raise AssertionError(f"scaledrill {' '.join(args)} exited {done.returncode}\n{done.stdout}\n{done.stderr}")
     return done
 
-
-@pytest.fixture
-def config():
-    return make_config

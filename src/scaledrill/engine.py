@@ -23,7 +23,7 @@ from .data.batches import cast_batch, check_finite
 from .data.sampler import Sampler
 from .data.tasks import Task, build_task
 from .errors import ConfigError, Interrupted
-from .grads import GradComputer, flatten_params, write_grads
+from .grads import PATHS, GradComputer, flatten_params, write_grads
 from .layout import Layout
 from .models.ghost_bn import set_group_size
 from .optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
@@ -67,8 +67,8 @@ class Trainer:
         self.clip_norm = cfg.optim.clip_norm
 
     def _choose_path(self, asked: str) -> str:
-        if asked not in ("auto", "fused", "vmap", "loop"):
-            raise ConfigError("train.grads", "must be one of auto, fused, vmap, loop", asked)
+        if asked not in PATHS:
+            raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", asked)
         if asked == "fused" and self.sync.per_worker:
             raise ConfigError("train.grads", f"fused cannot serve sync={self.cfg.sync.name}, which needs each worker's gradient; use auto, vmap or loop")
         if asked != "auto":

@@ -5,6 +5,7 @@ this module only runs them in order and checks the keys of `train`.
 """
 
 from .errors import ConfigError
+from .grads import PATHS
 from .layout import Layout
 
 
@@ -24,8 +25,8 @@ def validate_train(cfg) -> None:
         raise ConfigError("train.seed", "must be a whole number", cfg.train.seed)
     if cfg.train.tail not in ("drop", "carry"):
         raise ConfigError("train.tail", "must be drop or carry", cfg.train.tail)
-    if cfg.train.grads not in ("auto", "fused", "vmap", "loop"):
-        raise ConfigError("train.grads", "must be one of auto, fused, vmap, loop", cfg.train.grads)
+    if cfg.train.grads not in PATHS:
+        raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", cfg.train.grads)
     if cfg.train.dtype not in ("float32", "float64"):
         raise ConfigError("train.dtype", "must be float32 or float64", cfg.train.dtype)
     timeout = cfg.train.timeout_s
@@ -37,14 +38,9 @@ def validate_run(cfg) -> Layout:
     """Raise ConfigError naming the first bad key; return the layout when all is well."""
     layout = Layout.from_config(cfg.layout)
     validate_train(cfg)
-    from . import optim, sync
+    from . import optim, sync, telemetry
 
     optim.validate(cfg)
     sync.validate(cfg.sync)
-    try:
-        from .telemetry import validate as validate_telemetry
-    except ImportError:
-        validate_telemetry = None
-    if validate_telemetry is not None:
-        validate_telemetry(cfg.telemetry)
+    telemetry.validate(cfg.telemetry)
     return layout
