@@ -5,6 +5,7 @@ import json
 import pytest
 from rich.console import Console
 
+from conftest import make_config
 from scaledrill.errors import ConfigError, DataError
 from scaledrill.layout import Layout
 from scaledrill.optim import render_recipe, resolve_recipe, validate
@@ -12,15 +13,15 @@ from scaledrill.optim import render_recipe, resolve_recipe, validate
 IMAGENET_TRAIN = 1_281_167  # ImageNet-1k training images (from memory)
 
 
-def recipe(config, *overrides, size=1000, tail="drop"):
-    cfg = config(*overrides)
+def recipe(*overrides, size=1000, tail="drop"):
+    cfg = make_config(*overrides)
     return resolve_recipe(cfg, Layout.from_config(cfg.layout), size, tail)
 
 
-def test_goyal_linear_scaling_with_five_warmup_epochs(config):
+def test_goyal_linear_scaling_with_five_warmup_epochs():
     # Goyal et al. 2017: 256 workers × 32 = 8192, lr 0.1 per 256 -> 3.2, warmup 5 epochs from 0.1,
     # ÷10 at epochs 30, 60, 80 of 90
-    r = recipe(config, "layout.workers=256", "layout.micro_batch=32", "optim.lr=0.1", "scaling=linear",
+    r = recipe("layout.workers=256", "layout.micro_batch=32", "optim.lr=0.1", "scaling=linear",
                "scaling.base_batch=256", "schedule=step", "schedule.warmup_epochs=5", "schedule.warmup_start=0.03125",
                "schedule.milestones=[4680,9360,12480]", "train.steps=14040", size=IMAGENET_TRAIN)
     assert r.global_batch == 8192 and r.steps_per_epoch == 156  # 1281167 // 8192
@@ -33,27 +34,27 @@ def test_goyal_linear_scaling_with_five_warmup_epochs(config):
     assert r.epochs == pytest.approx(90.0, rel=1e-12)
 
 
-def test_sqrt_rule(config):
+def test_sqrt_rule():
     # lr ∝ √B (Krizhevsky 2014; Hoffer et al. 2017): 4× the batch, 2× the rate
-    r = recipe(config, "layout.workers=32", "layout.micro_batch=16", "optim=adamw", "optim.lr=0.001",
+    r = recipe("layout.workers=32", "layout.micro_batch=16", "optim=adamw", "optim.lr=0.001",
                "scaling=sqrt", "scaling.base_batch=128")
     assert r.global_batch == 512 and r.peak_lr == pytest.approx(0.002, rel=1e-12)
 
 
-def test_power_rule_and_explicit_base_lr(config):
-    r = recipe(config, "layout.workers=16", "scaling=power", "scaling.base_batch=16", "scaling.exponent=0.75",
+def test_power_rule_and_explicit_base_lr():
+    r = recipe("layout.workers=16", "scaling=power", "scaling.base_batch=16", "scaling.exponent=0.75",
                "scaling.base_lr=0.5")
     assert r.global_batch == 256 and r.peak_lr == pytest.approx(0.5 * 8, rel=1e-12)  # 16^0.75 = 8
 
 
-def test_no_rule_keeps_the_rate(config):
-    assert recipe(config, "optim.lr=0.3", "layout.workers=64", size=None).peak_lr == 0.3
+def test_no_rule_keeps_the_rate():
+    assert recipe("optim.lr=0.3", "layout.workers=64", size=None).peak_lr == 0.3
 
 
-def test_steps_per_epoch_follow_the_tail(config):
-    assert recipe(config, tail="drop").steps_per_epoch == 7  # 1000 // 128
-    assert recipe(config, tail="carry").steps_per_epoch == 1000 / 128
-    stream = recipe(config, size=None)
+def test_steps_per_epoch_follow_the_tail():
+    assert recipe(tail="drop").steps_per_epoch == 7  # 1000 // 128
+    assert recipe(tail="carry").steps_per_epoch == 1000 / 128
+    stream = recipe(size=None)
     assert stream.steps_per_epoch is None and stream.epochs is None
 
 
@@ -64,13 +65,13 @@ def test_steps_per_epoch_follow_the_tail(config):
     (["scaling=power", "scaling.base_batch=64"], 0.1 * 2**0.75),  # power.yaml: exponent 0.75
     (["schedule=cosine"], 0.1), (["schedule=polynomial"], 0.1), (["schedule=step"], 0.1),
 ])
-def test_every_config_file_resolves(config, overrides, peak):
-    r = recipe(config, *overrides)
+def test_every_config_file_resolves(overrides, peak):
+    r = recipe(*overrides)
     assert r.peak_lr == pytest.approx(peak, rel=1e-12) and r.lr_at(0) == pytest.approx(peak, rel=1e-12)
 
 
-def test_render_and_json(config):
-    r = recipe(config, "schedule=cosine", "schedule.warmup_steps=20", "optim.lr=0.2")
+def test_render_and_json():
+    r = recipe("schedule=cosine", "schedule.warmup_steps=20", "optim.lr=0.2")
     console = Console(record=True, width=120)
     console.print(render_recipe(r))
     text = console.export_text()
@@ -108,24 +109,24 @@ BAD = [
 
 
 @pytest.mark.parametrize("overrides, key", BAD)
-def test_bad_values_name_the_key(config, overrides, key):
+def test_bad_values_name_the_key(overrides, key):
     with pytest.raises(ConfigError) as err:
-        validate(config(*overrides))
+        validate(make_config(*overrides))
     assert err.value.key == key
 
 
-def test_warmup_in_epochs_longer_than_training(config):
+def test_warmup_in_epochs_longer_than_training():
     with pytest.raises(ConfigError) as err:
-        recipe(config, "schedule.warmup_epochs=30")  # 30 · 7 = 210 > 200 steps
+        recipe("schedule.warmup_epochs=30")  # 30 · 7 = 210 > 200 steps
     assert err.value.key == "schedule.warmup_epochs"
 
 
-def test_warmup_in_epochs_needs_epochs(config):
+def test_warmup_in_epochs_needs_epochs():
     with pytest.raises(ConfigError) as err:
-        recipe(config, "schedule.warmup_epochs=1", size=None)
+        recipe("schedule.warmup_epochs=1", size=None)
     assert err.value.key == "schedule.warmup_epochs"
 
 
-def test_a_dataset_smaller_than_one_batch_is_refused(config):
+def test_a_dataset_smaller_than_one_batch_is_refused():
     with pytest.raises(DataError):
-        recipe(config, size=100)  # B = 128
+        recipe(size=100)  # B = 128
