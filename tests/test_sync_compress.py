@@ -21,7 +21,7 @@ N = 630
 def local_round(step, V, seed=0):
     """A Round for V workers in one process: sums are plain row sums."""
     total = lambda t: t.sum(0)  # noqa: E731
-    return Round(step, range(V), V, seed, total, lambda t: t.sum(0) / V)
+    return Round(step, range(V), V, seed, total, lambda t, in_place=False: t.sum(0) / V)
 
 
 def layer(cfg, W=4, shapes=SHAPES, dtype=torch.float64):
@@ -211,6 +211,10 @@ class Doubling:
         self.sizes.append(t.numel())
         t.mul_(2)
 
+    def all_reduce_many(self, tensors):
+        for t in tensors:
+            self.all_reduce(t)
+
 
 def test_buckets_cover_the_vector_within_the_cap():
     assert bounds(10, 4, 16 / 2**20) == [slice(0, 4), slice(4, 8), slice(8, 10)]  # 16 B = 4 floats per bucket
@@ -219,3 +223,18 @@ def test_buckets_cover_the_vector_within_the_cap():
     out = bucketed_sum(rows, coll, 16 / 2**20)
     assert coll.sizes == [4, 4, 2]
     assert torch.equal(out, rows.sum(0) * 2)
+
+
+def test_a_donated_row_is_averaged_in_place_and_error_feedback_never_donates_its_own():
+    x = torch.randn(1, N, generator=torch.Generator().manual_seed(5), dtype=torch.float64)
+    want = x[0] / 4  # W = 4 workers, one row: the fused path's per-process sum
+    kept = layer({"name": "exact"}).reduce(x.clone(), range(4), 0)
+    donated = x.clone()
+    out = layer({"name": "exact"}).reduce(donated, range(4), 0, donate=True)
+    assert out.data_ptr() == donated.data_ptr()  # no copy of the vector
+    assert torch.equal(out, want) and torch.equal(kept, want)  # ÷4 is exact in binary
+    fed = layer({"name": "exact", "error_feedback": True})
+    y = x.expand(4, N).clone()
+    fed.reduce(y, range(4), 0, donate=True)
+    assert torch.equal(y, x.expand(4, N))  # fidelity reads the caller's rows again: not donated
+    assert fed.stats["residual_norm"] == 0.0  # exact leaves nothing behind

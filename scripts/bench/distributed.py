@@ -60,7 +60,7 @@ def engine_vs_ddp(collective, rounds: int) -> dict:
 
 
 def allreduce(collective, floats: int, bucket_mib: float, rounds: int) -> dict:
-    """The sync layer's exact reduce (bucketed) vs one dist.all_reduce of the same flat vector."""
+    """The sync layer's exact reduce (bucketed, input donated as the engine does) vs one dist.all_reduce of the same flat vector."""
     from scaledrill.layout import Layout
     from scaledrill.sync import build_sync
 
@@ -68,7 +68,7 @@ def allreduce(collective, floats: int, bucket_mib: float, rounds: int) -> dict:
     sync = build_sync({"name": "exact", "fidelity": False, "bucket_mib": bucket_mib}, layout, [torch.Size([floats])], collective, seed=0)
     local, raw = torch.randn(1, floats), torch.randn(floats)
     workers = layout.worker_ids(collective.rank)
-    cases = {"layer": lambda: sync.reduce(local, workers, 0), "raw": lambda: dist.all_reduce(raw)}
+    cases = {"layer": lambda: sync.reduce(local, workers, 0, donate=True), "raw": lambda: dist.all_reduce(raw)}
     times = interleave(cases, rounds, block=3, warmup=3, sync=dist.barrier, clock=time.perf_counter)
     mb = floats * 4 / 1e6
     return {"floats": floats, "bucket_mib": bucket_mib, "throughput": ratios(times, "raw", "layer"),

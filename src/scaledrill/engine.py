@@ -134,7 +134,7 @@ class Trainer:
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
-        average = self.sync.reduce(result.local, self.workers, step)
+        average = self.sync.reduce(result.local, self.workers, step, donate=True)
         scalars = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self._running_stats())
         W = self.layout.workers
         small_sq = big_sq = None

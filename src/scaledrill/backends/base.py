@@ -14,6 +14,9 @@ class Collective(Protocol):
     def all_reduce(self, tensor: torch.Tensor) -> None:
         """Sum `tensor` in place over all processes."""
 
+    def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
+        """Sum each tensor in place over all processes; the backend may overlap them."""
+
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         """Stack every process's `tensor` (same shape everywhere) along a new dim 0, in rank order."""
 
@@ -32,6 +35,9 @@ class LocalCollective:
     size = 1
 
     def all_reduce(self, tensor: torch.Tensor) -> None:
+        pass
+
+    def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
         pass
 
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:

@@ -21,6 +21,10 @@ class GlooCollective:
     def all_reduce(self, tensor: torch.Tensor) -> None:
         dist.all_reduce(tensor)
 
+    def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
+        for work in [dist.all_reduce(t, async_op=True) for t in tensors]:  # all in flight, then wait
+            work.wait()
+
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         out = torch.empty((self.size, *tensor.shape), dtype=tensor.dtype)
         dist.all_gather(list(out.unbind(0)), tensor.contiguous())

@@ -33,6 +33,10 @@ class MpiCollective:
             return
         self.comm.Allreduce(self._mpi.IN_PLACE, self._view(tensor), op=self._mpi.SUM)
 
+    def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
+        for tensor in tensors:
+            self.all_reduce(tensor)
+
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         src = tensor.float() if tensor.dtype == torch.bfloat16 else tensor.contiguous()
         out = torch.empty((self.size, *src.shape), dtype=src.dtype)

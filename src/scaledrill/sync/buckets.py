@@ -7,8 +7,12 @@ bucket bounds the memory a collective holds while keeping calls few.
 
 Steps, for rows [V, m] of one dtype:
 1. sum the V rows inside the process (in that dtype);
-2. one in-place SUM all-reduce per bucket across the P processes.
-The caller divides by W once.
+2. one in-place SUM all-reduce per bucket across the P processes, all buckets
+   in flight at once where the backend allows (small buckets pay latency, not
+   bandwidth).
+The caller divides by W once. A single row is copied first unless the caller
+donates it (`in_place`): the copy of a large vector costs a visible share of a
+loopback all-reduce.
 """
 
 import torch
@@ -20,10 +24,12 @@ def bounds(m: int, itemsize: int, bucket_mib: float) -> list[slice]:
     return [slice(a, min(a + per, m)) for a in range(0, m, per)]
 
 
-def bucketed_sum(rows: torch.Tensor, collective, bucket_mib: float) -> torch.Tensor:
+def bucketed_sum(rows: torch.Tensor, collective, bucket_mib: float, in_place: bool = False) -> torch.Tensor:
     """Σ over rows and over processes; identical on every process."""
-    flat = rows.sum(dim=0) if rows.shape[0] > 1 else rows[0].clone()  # 1.
-    if collective.size > 1:
-        for piece in bounds(flat.numel(), flat.element_size(), bucket_mib):  # 2.
-            collective.all_reduce(flat[piece])
+    if rows.shape[0] > 1:  # 1.
+        flat = rows.sum(dim=0)
+    else:
+        flat = rows[0] if in_place else rows[0].clone()
+    if collective.size > 1:  # 2.
+        collective.all_reduce_many([flat[piece] for piece in bounds(flat.numel(), flat.element_size(), bucket_mib)])
     return flat

@@ -14,7 +14,7 @@ workers computed is lost, only delayed.
 """
 
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any
 
 import torch
@@ -41,7 +41,7 @@ class ErrorFeedback:
 
     def update(self, x, state, rnd):
         y = x + state.worker_residual.to(x.dtype)  # 1.
-        out, inner = self.inner.update(y, state.inner, rnd)  # 2.
+        out, inner = self.inner.update(y, state.inner, replace(rnd, donated=False))  # 2. y is read again in 3.
         residual = y - out.sent  # 3.
         squares = rnd.sum(torch.linalg.vector_norm(residual, dim=1, keepdim=True).double().square())
         stats = {**out.stats, "residual_norm": float(squares.sqrt())}

@@ -87,23 +87,29 @@ class SyncLayer:
         self.stats: dict[str, float] = {}
 
     @property
+    def fidelity_reads_local(self) -> bool:
+        return self.fidelity and not self.compressor.lossless  # 3. reads `local` after the update
+
+    @property
     def per_worker(self) -> bool:
         return self.bitwise or self.compressor.per_worker  # the tree needs each worker's row
 
-    def _sum(self, rows: torch.Tensor) -> torch.Tensor:
+    def _sum(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         if self.bitwise:
             return tree_sum(rows, self.collective, self.bucket_mib)
-        return bucketed_sum(rows, self.collective, self.bucket_mib)
+        return bucketed_sum(rows, self.collective, self.bucket_mib, in_place)
 
-    def _mean(self, rows: torch.Tensor) -> torch.Tensor:
-        return self._sum(rows).div_(self.layout.workers)
+    def _mean(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
+        return self._sum(rows, in_place).div_(self.layout.workers)
 
-    def reduce(self, local: torch.Tensor, workers: range, step: int) -> torch.Tensor:
+    def reduce(self, local: torch.Tensor, workers: range, step: int, donate: bool = False) -> torch.Tensor:
+        """The global average of this step; `donate` lets the layer overwrite `local`
+        (the engine's fused path does: it never reads `local` again)."""
         want = len(workers) if self.per_worker else 1
         if local.dim() != 2 or local.shape[1] != self.n or local.shape[0] not in (want, len(workers)):
             raise ValueError(f"expected local of shape [{want}, {self.n}], got {tuple(local.shape)}")
         W = self.layout.workers
-        rnd = Round(step, workers, W, self.seed, self._sum, self._mean)
+        rnd = Round(step, workers, W, self.seed, self._sum, self._mean, donate and not self.fidelity_reads_local)
         out, self.state = self.compressor.update(local, self.state, rnd)  # 1. and 2.
         self.calls += 1
         full = dense_bytes(self.n, local.dtype)

@@ -38,7 +38,8 @@ class Round:
 
     `sum` adds rows [V, m] over this process and then over all processes, in the
     rows' dtype; `mean` is the global average over all `world` workers. Both return
-    [m], identical on every process.
+    [m], identical on every process. When `donated`, the rows handed to `update`
+    are the caller's to overwrite, and `mean(rows, in_place=True)` may reuse them.
     """
 
     step: int
@@ -46,7 +47,8 @@ class Round:
     world: int  # W
     seed: int
     sum: Callable[[torch.Tensor], torch.Tensor]
-    mean: Callable[[torch.Tensor], torch.Tensor]
+    mean: Callable[..., torch.Tensor]
+    donated: bool = False
 
     def generator(self, v: int) -> torch.Generator:
         """Random stream of row v, from (seed, step, global worker id) only, so never from P."""

@@ -32,7 +32,7 @@ class Cast:
     def update(self, x, state, rnd):
         W = rnd.world
 
-        def narrow_mean(t):
+        def narrow_mean(t, in_place=False):  # a copy is made anyway
             # 1. divide by W first, 2. cast, 3. sum in the narrow type, 4. cast back
             return rnd.sum((t / W).to(self.dtype)).to(t.dtype)
 
