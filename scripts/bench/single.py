@@ -52,7 +52,8 @@ def paths(rounds: int, loop_rounds: int) -> list[Row]:
         Row("loop step / vmap step (vmap speed-up)", ratios(slow, "loop", "vmap")["median"], ratios(slow, "loop", "vmap"),
             ">= 3", note=f"{setting}; vmap {ms(slow['vmap']):.1f} ms, loop {times['loop']}"),
         Row("vmap step / fused step", ratios(fast, "vmap", "fused")["median"], ratios(fast, "vmap", "fused"),
-            "<= 2.0", note=f"{setting}; vmap {times['vmap']}"),
+            "<= 2.0", note=f"{setting}; vmap {times['vmap']}; dominated by per-worker weight gradients "
+            "(convolution backward batched over W) and BatchNorm's elementwise backward per worker group"),
     ]
 
 
