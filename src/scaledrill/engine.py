@@ -25,13 +25,14 @@ from .data.tasks import Task, build_task
 from .errors import ConfigError, Interrupted
 from .grads import PATHS, GradComputer, flatten_params, write_grads
 from .layout import Layout
-from .models.ghost_bn import set_group_size
+from .models.ghost_bn import set_global_statistics, set_group_size
 from .optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
 from .signals import StopFlag
 from .sync import build_sync
 from .sync.summary import sync_summary
 from .telemetry.layers import layer_stats
 from .telemetry.monitor import Monitor, StepRecord
+from .validate import validate_batchnorm
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
 
@@ -60,6 +61,10 @@ class Trainer:
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.path = self._choose_path(cfg.train.grads)
+        validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
+        self.batchnorm = cfg.train.get("batchnorm", "worker")
+        if self.batchnorm == "global":
+            set_global_statistics(self.model, collective)  # the group is the process's V·b samples, summed over P
         self.step_index = 0
         # Read once: a config lookup costs tens of microseconds, several per step.
         tel = cfg.telemetry
@@ -116,8 +121,8 @@ class Trainer:
 
     def _noise_due(self, step: int) -> bool:
         every = self.noise_every
-        if self.layout.workers < 2 or not every:
-            return False
+        if self.layout.workers < 2 or not every or self.batchnorm == "global":
+            return False  # global statistics tie the workers together: no per-worker gradients to measure
         return self.path != "fused" or step % every == 0  # per-worker paths measure it for free
 
     def _layers_due(self, step: int) -> bool:

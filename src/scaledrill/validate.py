@@ -17,6 +17,42 @@ def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
         raise ConfigError(f"train.{key}", rule, value)
 
 
+BATCHNORM = ("worker", "global")  # whose samples BatchNorm's statistics come from
+
+
+def batchnorm_path_error(cause: str) -> ConfigError:
+    """train.batchnorm=global on a per-worker gradient path, which `cause` selected."""
+    return ConfigError(
+        "train.batchnorm",
+        f"global needs the fused gradient path, but {cause} computes each worker on its own and a worker cannot see "
+        "the other workers' samples; use train.batchnorm=worker, or train.grads=fused with a sync that sums per process",
+        "global",
+    )
+
+
+def _per_worker_cause(cfg) -> str | None:
+    """The setting that puts the run on a per-worker gradient path (the engine's choice, from the config alone)."""
+    from .sync.compress import build
+
+    sync = cfg.sync
+    if sync.get("bitwise", False):
+        return "sync.bitwise=true"
+    if sync.get("error_feedback", False) or build(sync).per_worker:
+        return f"sync={sync.name}" + (" with error_feedback" if sync.get("error_feedback", False) else "")
+    if cfg.train.grads in ("vmap", "loop"):
+        return f"train.grads={cfg.train.grads}"
+    return None
+
+
+def validate_batchnorm(cfg) -> None:
+    mode = cfg.train.get("batchnorm", "worker")
+    if mode not in BATCHNORM:
+        raise ConfigError("train.batchnorm", "must be worker or global", mode)
+    cause = _per_worker_cause(cfg) if mode == "global" else None
+    if cause is not None:
+        raise batchnorm_path_error(cause)
+
+
 def validate_train(cfg) -> None:
     _positive_int(cfg, "steps")
     _positive_int(cfg, "eval_every", allow_zero=True)
@@ -42,5 +78,6 @@ def validate_run(cfg) -> Layout:
 
     optim.validate(cfg)
     sync.validate(cfg.sync)
+    validate_batchnorm(cfg)  # after sync: which gradient path the sync needs
     telemetry.validate(cfg.telemetry)
     return layout

@@ -110,9 +110,8 @@ class Diagnosis:
         self._explained(explained, Finding(
             "BatchNorm statistics: each worker normalises its own micro-batch of b samples, the true batch normalises all B",
             f"{', '.join(explained)} match the reference with per-worker statistics (check.batchnorm=worker); {how}",
-            "compare what the cluster computes (check.batchnorm=worker), or synchronise the statistics: in one process set the "
-            "GhostBatchNorm group to all workers of the micro-step (set_group_size(model, W·b)); across processes the simulator "
-            "does not synchronise BatchNorm statistics (torch's SyncBatchNorm does not run on CPU), so P > 1 keeps per-worker statistics"))
+            "compare what the cluster computes (check.batchnorm=worker), or synchronise the statistics over all W·b samples "
+            "of each micro-step with train.batchnorm=global (fused path, any P; as SyncBatchNorm does across ranks)"))
 
     # 4. -----------------------------------------------------------------------
     def loss_normalisation(self) -> None:

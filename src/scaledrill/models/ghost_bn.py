@@ -18,10 +18,41 @@ statistics of separate per-worker BatchNorm modules started from the same state.
 Step 3 is an in-place update of the buffers under no_grad written with primitive
 ops, so under `torch.func.vmap` with buffers batched over workers each worker
 updates its own copy. Eval mode normalises with the running statistics.
+
+Global statistics (`set_global_statistics(module, collective)`), as torch's
+SyncBatchNorm computes them across ranks: the group is the whole local batch and
+its per-channel sums are added over the P processes by a differentiable
+all-reduce, so forward and backward equal one BatchNorm (Ioffe & Szegedy 2015)
+over all samples of all processes. Two passes keep the variance sound: first
+count and Σx give the global mean, then Σ(x - mean)² gives the global variance.
+Every process then updates its running statistics with the same global values.
+Not for vmap: a collective cannot run inside it.
 """
 
 import torch
 from torch import nn
+
+
+class _AllReduceSum(torch.autograd.Function):
+    """Sum over processes whose backward is the same sum: every process's loss
+    depends on the global sum, so each input's gradient is the sum of all of them."""
+
+    @staticmethod
+    def forward(ctx, tensor: torch.Tensor, collective) -> torch.Tensor:
+        ctx.collective = collective
+        out = tensor.clone()
+        collective.all_reduce(out)
+        return out
+
+    @staticmethod
+    def backward(ctx, grad: torch.Tensor):
+        out = grad.clone()
+        ctx.collective.all_reduce(out)
+        return out, None
+
+
+def all_reduce_sum(tensor: torch.Tensor, collective) -> torch.Tensor:
+    return _AllReduceSum.apply(tensor, collective)
 
 
 class GhostBatchNorm(nn.Module):
@@ -34,9 +65,11 @@ class GhostBatchNorm(nn.Module):
         self.register_buffer("running_mean", torch.zeros(num_features))
         self.register_buffer("running_var", torch.ones(num_features))
         self.register_buffer("num_batches_tracked", torch.tensor(0, dtype=torch.long))
+        self.collective = None  # set: global statistics over the processes of this collective
 
     def extra_repr(self) -> str:
-        return f"{self.num_features}, group_size={self.group_size}, eps={self.eps}, momentum={self.momentum}"
+        where = ", global" if self.collective is not None else ""
+        return f"{self.num_features}, group_size={self.group_size}, eps={self.eps}, momentum={self.momentum}{where}"
 
     def _shape(self, x: torch.Tensor) -> list[int]:
         """Broadcast shape of a per-channel vector against one sample: [C, 1, 1, ...]."""
@@ -56,6 +89,8 @@ class GhostBatchNorm(nn.Module):
         return y
 
     def _train_forward(self, x: torch.Tensor) -> torch.Tensor:
+        if self.collective is not None:
+            return self._global_forward(x)
         n = x.shape[0]
         g = n if self.group_size is None else self.group_size
         if g < 1 or n % g:
@@ -68,17 +103,35 @@ class GhostBatchNorm(nn.Module):
         count = grouped.numel() // (grouped.shape[0] * self.num_features)
         if count < 2:
             raise ValueError(f"each group needs more than one value per channel, got {count}")
-        with torch.no_grad():  # step 3
-            group_mean = mean.detach().reshape(n // g, self.num_features).mean(0)
-            group_var = var.detach().reshape(n // g, self.num_features).mean(0) * (count / (count - 1))
-            self.num_batches_tracked.add_(1)
-            if self.momentum is None:  # cumulative average, as torch does for momentum=None
-                factor = 1.0 / self.num_batches_tracked.to(group_mean.dtype)
-            else:
-                factor = self.momentum
-            self.running_mean.mul_(1 - factor).add_(factor * group_mean)
-            self.running_var.mul_(1 - factor).add_(factor * group_var)
+        group_mean = mean.detach().reshape(n // g, self.num_features).mean(0)
+        group_var = var.detach().reshape(n // g, self.num_features).mean(0) * (count / (count - 1))
+        self._update_running(group_mean, group_var)  # step 3
         return y
+
+    @torch.no_grad()
+    def _update_running(self, mean: torch.Tensor, unbiased_var: torch.Tensor) -> None:
+        self.num_batches_tracked.add_(1)
+        if self.momentum is None:  # cumulative average, as torch does for momentum=None
+            factor = 1.0 / self.num_batches_tracked.to(mean.dtype)
+        else:
+            factor = self.momentum
+        self.running_mean.mul_(1 - factor).add_(factor * mean)
+        self.running_var.mul_(1 - factor).add_(factor * unbiased_var)
+
+    def _global_forward(self, x: torch.Tensor) -> torch.Tensor:
+        """Normalise with statistics over every sample of every process (see the module doc)."""
+        shape = self._shape(x)
+        dims = [0] + list(range(2, x.dim()))  # samples and spatial positions
+        local_count = torch.full((1,), x.numel() // self.num_features, dtype=x.dtype)
+        sums = all_reduce_sum(torch.cat([x.sum(dim=dims), local_count]), self.collective)
+        count = sums[-1].detach()
+        if count < 2:
+            raise ValueError(f"global statistics need more than one value per channel, got {int(count)}")
+        mean = sums[:-1] / count
+        centred = x - mean.view(shape)
+        var = all_reduce_sum(centred.square().sum(dim=dims), self.collective) / count
+        self._update_running(mean.detach(), var.detach() * (count / (count - 1)))
+        return centred * torch.rsqrt(var + self.eps).view(shape)
 
 
 def convert_batchnorm(module: nn.Module, group_size: int | None = None) -> nn.Module:
@@ -100,4 +153,13 @@ def set_group_size(module: nn.Module, group_size: int | None) -> int:
     found = [m for m in module.modules() if isinstance(m, GhostBatchNorm)]
     for m in found:
         m.group_size = group_size
+    return len(found)
+
+
+def set_global_statistics(module: nn.Module, collective) -> int:
+    """Make every GhostBatchNorm in `module` normalise over the whole batch of every
+    process of `collective` (None: back to groups of `group_size`); returns how many."""
+    found = [m for m in module.modules() if isinstance(m, GhostBatchNorm)]
+    for m in found:
+        m.collective = collective
     return len(found)
