@@ -11,7 +11,6 @@ import socket
 import pytest
 import torch
 import torch.multiprocessing as mp
-from torch import nn
 
 from conftest import make_config
 from scaledrill.backends import LocalCollective
@@ -19,17 +18,7 @@ from scaledrill.errors import ConfigError
 from scaledrill.models import GhostBatchNorm
 from scaledrill.models.ghost_bn import set_global_statistics
 from scaledrill.validate import validate_run
-
-
-def _torch_bn(channels: int) -> nn.BatchNorm2d:
-    gen = torch.Generator().manual_seed(0)
-    bn = nn.BatchNorm2d(channels, dtype=torch.float64)
-    with torch.no_grad():
-        bn.weight.copy_(1 + 0.5 * torch.randn(channels, generator=gen))
-        bn.bias.copy_(torch.randn(channels, generator=gen))
-        bn.running_mean.copy_(torch.randn(channels, generator=gen))
-        bn.running_var.copy_(torch.rand(channels, generator=gen) + 0.5)
-    return bn
+from test_ghost_bn import _torch_bn
 
 
 def test_global_statistics_equal_torch_batchnorm_over_the_whole_batch():
@@ -38,7 +27,7 @@ def test_global_statistics_equal_torch_batchnorm_over_the_whole_batch():
     x = 3 * torch.randn(V * b, C, 5, 5, generator=gen, dtype=torch.float64) + 2
     upstream = torch.randn(V * b, C, 5, 5, generator=gen, dtype=torch.float64)
 
-    reference = _torch_bn(C)  # torch's BatchNorm2d over all V·b samples: the outside reference
+    reference = _torch_bn(C).double()  # torch's BatchNorm2d over all V·b samples: the outside reference
     ghost = GhostBatchNorm(C, group_size=b).double()  # per-worker groups, overridden by the global setting
     ghost.load_state_dict(copy.deepcopy(reference.state_dict()))
     assert set_global_statistics(ghost, LocalCollective()) == 1
