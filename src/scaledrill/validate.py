@@ -47,7 +47,7 @@ def _per_worker_cause(cfg) -> str | None:
 def validate_batchnorm(cfg) -> None:
     mode = cfg.train.get("batchnorm", "worker")
     if mode not in BATCHNORM:
-        raise ConfigError("train.batchnorm", "must be worker or global", mode)
+        raise ConfigError("train.batchnorm", f"must be {' or '.join(BATCHNORM)}", mode)
     cause = _per_worker_cause(cfg) if mode == "global" else None
     if cause is not None:
         raise batchnorm_path_error(cause)
