@@ -94,6 +94,7 @@ def _rank(rank, port, container, out_dir):
     collective = GlooCollective(timedelta(seconds=60))
     try:
         torch.save(_train(OmegaConf.create(container), collective), f"{out_dir}/rank{rank}.pt")
+        collective.barrier()  # neither rank tears down while the other still talks
     finally:
         collective.close()
 

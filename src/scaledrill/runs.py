@@ -56,6 +56,7 @@ def run_as_rank(cfg, run_dir: Path, collective) -> dict:
     try:
         with progress:
             summary = run_training(cfg, collective, run_dir=run_dir, on_step=progress.update)
+        collective.barrier()  # no rank tears down its connections while a peer still uses them
     finally:
         collective.close()
     if collective.rank == 0:
