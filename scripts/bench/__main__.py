@@ -30,7 +30,7 @@ PLAN = {
     "paths": ({"rounds": 30, "loop_rounds": 7}, {"rounds": 10, "loop_rounds": 2}),
     "compress": ({"rounds": 9}, {"rounds": 3}),
     "telemetry": ({"rounds": 9}, {"rounds": 3}),
-    "dist": ({"rounds": 20}, {"rounds": 6}),
+    "dist": ({"rounds": 40}, {"rounds": 8}),
     "memory": ({"sizes": [64, 256, 1024]}, {"sizes": [64, 256], "paths": ("vmap",)}),
 }
 

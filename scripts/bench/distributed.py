@@ -19,10 +19,13 @@ import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
+from scaledrill.sync.layer import DEFAULTS as SYNC_DEFAULTS
+
 from .common import MICRO, WORKERS, pin_threads, trainer
 from .timing import Row, interleave, ms, ratios
 
 PROCS = 2
+DEFAULT_MIB = float(SYNC_DEFAULTS["bucket_mib"])
 
 
 def free_port() -> int:
@@ -55,7 +58,7 @@ def ddp_step(tr):
 
 def engine_vs_ddp(collective, rounds: int) -> dict:
     tr = trainer(f"layout.procs={PROCS}", "layout.backend=gloo", "train.grads=fused", collective=collective)
-    times = interleave({"engine": tr.step, "ddp": ddp_step(tr)}, rounds, block=3, warmup=3, sync=dist.barrier, clock=time.perf_counter)
+    times = interleave({"engine": tr.step, "ddp": ddp_step(tr)}, rounds, block=10, warmup=5, sync=dist.barrier, clock=time.perf_counter)
     return {"ratio": ratios(times, "engine", "ddp"), "engine_ms": ms(times["engine"]), "ddp_ms": ms(times["ddp"])}
 
 
@@ -69,7 +72,7 @@ def allreduce(collective, floats: int, bucket_mib: float, rounds: int) -> dict:
     local, raw = torch.randn(1, floats), torch.randn(floats)
     workers = layout.worker_ids(collective.rank)
     cases = {"layer": lambda: sync.reduce(local, workers, 0, donate=True), "raw": lambda: dist.all_reduce(raw)}
-    times = interleave(cases, rounds, block=3, warmup=3, sync=dist.barrier, clock=time.perf_counter)
+    times = interleave(cases, rounds, block=10, warmup=5, sync=dist.barrier, clock=time.perf_counter)
     mb = floats * 4 / 1e6
     return {"floats": floats, "bucket_mib": bucket_mib, "throughput": ratios(times, "raw", "layer"),
             "layer_MBps": mb / (ms(times["layer"]) / 1e3), "raw_MBps": mb / (ms(times["raw"]) / 1e3)}
@@ -83,7 +86,7 @@ def _child(rank: int, port: int, threads: int, rounds: int, floats: int, out: st
     collective = open_collective("gloo", timeout_s=300)
     try:
         result = {"ddp": engine_vs_ddp(collective, rounds),
-                  "allreduce": [allreduce(collective, floats, mib, rounds) for mib in (25.0, 1.0)]}
+                  "allreduce": [allreduce(collective, floats, mib, rounds) for mib in (DEFAULT_MIB, 1.0)]}
         if rank == 0:
             Path(out).write_text(json.dumps(result))
         dist.barrier()
@@ -100,8 +103,9 @@ def run(threads: int, rounds: int, floats: int = 2_000_000) -> list[Row]:
     rows = [Row("engine (2 gloo procs) / torch DDP (2 gloo procs)", d["ratio"]["median"], d["ratio"], "<= 1.10",
                 note=f"W={WORKERS}, b={MICRO}, fused; engine {d['engine_ms']:.1f} ms, DDP {d['ddp_ms']:.1f} ms", detail=d)]
     for a in result["allreduce"]:
+        default = a["bucket_mib"] == DEFAULT_MIB  # the goal holds at the default; smaller buckets are shown for their cost
         rows.append(Row(f"bucketed all-reduce throughput / raw ({a['bucket_mib']:g} MiB buckets)", a["throughput"]["median"],
-                        a["throughput"], ">= 0.9",
+                        a["throughput"], ">= 0.9" if default else None,
                         note=f"{a['floats'] * 4 / 1e6:.0f} MB; {a['layer_MBps']:.0f} vs {a['raw_MBps']:.0f} MB/s"
                         + ("" if a["bucket_mib"] * 2**20 >= a["floats"] * 4 else f"; {-(-a['floats'] * 4 // int(a['bucket_mib'] * 2**20))} "
                            "calls: small buckets pay gloo's per-call latency"), detail=a))

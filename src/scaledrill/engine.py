@@ -65,6 +65,9 @@ class Trainer:
         self.batchnorm = cfg.train.get("batchnorm", "worker")
         if self.batchnorm == "global":
             set_global_statistics(self.model, collective)  # the group is the process's V·b samples, summed over P
+        # Averaged over processes every step (their tensors stay in place: restores and the vmap path copy into them).
+        named = dict(self.model.named_buffers())
+        self.running_stats = [named[n] for n in self.grads.running_stats] if collective.size > 1 else []
         self.step_index = 0
         # Read once: a config lookup costs tens of microseconds, several per step.
         tel = cfg.telemetry
@@ -100,24 +103,28 @@ class Trainer:
         self.comm.all_reduce(local)
         return float(local)
 
-    def _running_stats(self) -> list[torch.Tensor]:
-        named = dict(self.model.named_buffers())
-        return [named[n] for n in self.grads.running_stats] if self.comm.size > 1 else []
-
-    def _share_scalars(self, values: list[float], buffers: list[torch.Tensor]) -> torch.Tensor:
+    def _share_scalars(self, values: list[float], buffers: list[torch.Tensor]):
         """One all-reduce per step for everything small: the step's scalars and the
         running statistics (averaged over processes, so they follow the mean over all
         W workers). In float64, where the sum of P float32 values is exact, so the
-        average does not depend on the order the processes are summed in."""
+        average does not depend on the order the processes are summed in.
+
+        Started here, finished by the returned function: the caller syncs the
+        gradient meanwhile, so this small reduce costs no extra round trip."""
         parts = [torch.tensor(values, dtype=torch.float64)] + [b.detach().reshape(-1).double() for b in buffers]
         shared = torch.cat(parts)
-        self.comm.all_reduce(shared)
-        offset = len(values)
-        with torch.no_grad():
-            for buf in buffers:
-                buf.copy_((shared[offset : offset + buf.numel()] / self.comm.size).view_as(buf))
-                offset += buf.numel()
-        return shared[: len(values)]
+        pending = self.comm.all_reduce_start(shared)
+
+        def finish() -> torch.Tensor:
+            pending.wait()
+            offset = len(values)
+            with torch.no_grad():
+                for buf in buffers:
+                    buf.copy_((shared[offset : offset + buf.numel()] / self.comm.size).view_as(buf))
+                    offset += buf.numel()
+            return shared[: len(values)]
+
+        return finish
 
     def _noise_due(self, step: int) -> bool:
         every = self.noise_every
@@ -138,9 +145,10 @@ class Trainer:
         result = self.grads.compute(micro, scale, path)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
+        shared = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self.running_stats)
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
         average = self.sync.reduce(result.local, self.workers, step, donate=True)
-        scalars = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self._running_stats())
+        scalars = shared()
         W = self.layout.workers
         small_sq = big_sq = None
         if noise:

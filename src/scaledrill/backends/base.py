@@ -17,6 +17,10 @@ class Collective(Protocol):
     def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
         """Sum each tensor in place over all processes; the backend may overlap them."""
 
+    def all_reduce_start(self, tensor: torch.Tensor) -> "Pending":
+        """Begin summing `tensor` in place; it holds the sum once `.wait()` returns.
+        Every process must start and wait in the same order as its other collectives."""
+
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         """Stack every process's `tensor` (same shape everywhere) along a new dim 0, in rank order."""
 
@@ -26,6 +30,17 @@ class Collective(Protocol):
     def barrier(self) -> None: ...
 
     def close(self) -> None: ...
+
+
+class Pending(Protocol):
+    def wait(self) -> object: ...
+
+
+class Done:
+    """A collective that already finished (one process, or a backend that blocks)."""
+
+    def wait(self) -> None:
+        pass
 
 
 class LocalCollective:
@@ -39,6 +54,9 @@ class LocalCollective:
 
     def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
         pass
+
+    def all_reduce_start(self, tensor: torch.Tensor) -> Done:
+        return Done()
 
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         return tensor.unsqueeze(0).clone()

@@ -25,6 +25,9 @@ class GlooCollective:
         for work in [dist.all_reduce(t, async_op=True) for t in tensors]:  # all in flight, then wait
             work.wait()
 
+    def all_reduce_start(self, tensor: torch.Tensor):
+        return dist.all_reduce(tensor, async_op=True)
+
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         out = torch.empty((self.size, *tensor.shape), dtype=tensor.dtype)
         dist.all_gather(list(out.unbind(0)), tensor.contiguous())

@@ -6,6 +6,16 @@ bf16 has no MPI datatype; such tensors travel as float32 and come back.
 import numpy as np
 import torch
 
+from .base import Done
+
+
+class _Request:
+    def __init__(self, request):
+        self.request = request
+
+    def wait(self) -> None:
+        self.request.Wait()
+
 
 class MpiCollective:
     def __init__(self):
@@ -36,6 +46,12 @@ class MpiCollective:
     def all_reduce_many(self, tensors: list[torch.Tensor]) -> None:
         for tensor in tensors:
             self.all_reduce(tensor)
+
+    def all_reduce_start(self, tensor: torch.Tensor):
+        if tensor.dtype == torch.bfloat16 or not tensor.is_contiguous():
+            self.all_reduce(tensor)  # needs a copy back after the sum: done now
+            return Done()
+        return _Request(self.comm.Iallreduce(self._mpi.IN_PLACE, self._view(tensor), op=self._mpi.SUM))
 
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         src = tensor.float() if tensor.dtype == torch.bfloat16 else tensor.contiguous()
