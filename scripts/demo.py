@@ -3,7 +3,8 @@
 1. check    — accumulation, virtual workers and real processes match the true batch
 2. ladder   — the digits recipe at growing global batches, with SGD and with LAMB
 3. forecast — time and cost of each rung on an example cluster of our own invention
-4. report   — one HTML page with every picture
+4. diverge  — a recipe scaled too far blows up; replay tries fixes from its last healthy checkpoint
+5. report   — one HTML page with every picture
 
 Every step is the command line a user would type; the outputs land in one folder.
 """
@@ -43,7 +44,12 @@ def main() -> None:
          "ladder", *LADDER, "optim=lamb", "optim.lr=0.005", f"hydra.run.dir={out}/ladder-lamb")
     step("3. forecast: what would each rung cost on the example cluster?",
          "forecast", "task=digits", f"forecast.ladder={out}/ladder-sgd", f"hydra.run.dir={out}/forecast")
-    step("4. report", "report", str(out))
+    step("4a. a recipe scaled 64x by the linear rule diverges (detectors stop it, an incident is written)",
+         "run", "+recipe=divergence", "train.progress=false", f"hydra.run.dir={out}/blowup")
+    step("4b. replay: the same steps again, and fixes side by side, from the newest checkpoint before the blow-up",
+         "replay", f"replay.from={out}/blowup", '+replay.variants.clip="optim.clip_norm=2.0"', '+replay.variants.sqrt="scaling.rule=sqrt"',
+         '+replay.variants.lamb=["optim=lamb","optim.lr=0.002","scaling.rule=sqrt"]', f"hydra.run.dir={out}/replay")
+    step("5. report", "report", str(out))
     print(f"\nDemo outputs: {out}\nOpen the report: {out / 'report.html'}")
 
 

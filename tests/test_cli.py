@@ -45,8 +45,10 @@ def test_cfg_job_prints_the_resolved_config():
 
 def test_run_writes_summary_and_refuses_to_overwrite(tmp_path):
     run_dir = tmp_path / "run"
-    run_cli("run", *QUICK, "layout.accum=2", f"hydra.run.dir={run_dir}", check=True)
+    done = run_cli("run", *QUICK, "layout.accum=2", f"hydra.run.dir={run_dir}", check=True)
     summary = json.loads((run_dir / "summary.json").read_text())
+    assert f"finished 3 steps in {summary['wall_seconds']:.1f} s: last train loss {summary['final_loss']:.4g}" in done.stdout
+    assert f"outputs: {run_dir}" in done.stdout and f"scaledrill report {run_dir}" in done.stdout
     for key in ("workers", "procs", "micro_batch", "accum", "global_batch", "backend", "steps", "samples_seen",
                 "dropped_samples", "final_loss", "eval", "final_params_l2", "wall_seconds"):
         assert key in summary, key
@@ -106,3 +108,13 @@ def test_recipe_prints_and_writes_recipe_json(tmp_path):
     for key in ("warmup_steps", "steps_per_epoch", "total_steps"):
         assert key in recipe
     assert not (tmp_path / "summary.json").exists()  # trains nothing
+
+
+def test_a_diverged_run_says_where_it_broke_and_how_to_replay(tmp_path):
+    run_dir = tmp_path / "blowup"
+    done = run_cli("run", "+recipe=divergence", "train.progress=false", f"hydra.run.dir={run_dir}", check=True)
+    summary = json.loads((run_dir / "summary.json").read_text())
+    assert summary["diverged"]
+    assert f"diverged after {summary['steps']} steps (loss spike at step" in done.stdout
+    assert f"incident report: {summary['incidents'][0]}" in done.stdout
+    assert f"scaledrill replay replay.from={run_dir} " in done.stdout  # replay picks the checkpoint before the trigger

@@ -26,9 +26,9 @@ _started = False  # becomes True once a verb's own code runs; Hydra's errors com
 
 def _verb_function(verb: str):
     if verb == "run":
-        from .runs import run_verb
+        from .runs import run_command
 
-        return run_verb
+        return run_command
     if verb == "recipe":
         from .optim.recipe_verb import recipe_verb
 

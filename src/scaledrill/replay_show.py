@@ -20,6 +20,11 @@ def _min(values) -> float | None:
     return min(finite) if finite else None
 
 
+def _headline(reason: str | None) -> str:
+    """Each detector's finding without its numbers (those stay in replay.json and the incident)."""
+    return "; ".join(part.split(":")[0] for part in reason.split("; ")) if reason else "-"
+
+
 def print_table(rows: list[dict], with_log: bool, departure: int | None) -> None:
     table = Table(title="replay")
     for column in ("variant", "overrides", "final loss", "min loss", "diverged", "steps", "stop reason", "lr at end"):
@@ -32,7 +37,7 @@ def print_table(rows: list[dict], with_log: bool, departure: int | None) -> None
         lr = curves.get("lr", ([], []))[1]
         cells = [
             row["name"], " ".join(row["overrides"]) or "-", _num(s["final_loss"]), _num(_min(loss)),
-            "yes" if s["diverged"] else "no", str(s["steps"]), s["stop_reason"] or "-",
+            "yes" if s["diverged"] else "no", str(s["steps"]), _headline(s["stop_reason"]),
             _num(float(lr[-1]) if len(lr) else None),
         ]
         if with_log:
