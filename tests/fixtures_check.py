@@ -8,6 +8,8 @@ import torch
 from torch import nn
 
 from scaledrill.check.dropout import KeyedDropout, content_keys
+from scaledrill.models.digits_cnn import DigitsNet
+from scaledrill.models.ghost_bn import GhostBatchNorm
 
 
 def _global_scale(loss, micro_batches, reduce) -> float:
@@ -101,3 +103,24 @@ class KeyedDropoutMLP(DropoutMLP):
 
     def forward(self, x):
         return self.rest(self.drop(torch.relu(self.first(x)), content_keys(x)))
+
+
+class PerGroupOnlyBatchNorm(GhostBatchNorm):
+    """Mistake: a BatchNorm subclass that always normalises its own groups of b, ignoring the global setting."""
+
+    def _train_forward(self, x):
+        kept, self.collective = self.collective, None
+        try:
+            return super()._train_forward(x)
+        finally:
+            self.collective = kept
+
+
+class PerGroupOnlyDigitsNet(DigitsNet):
+    """The digits CNN with that BatchNorm (fresh BatchNorm parameters are ones and zeros, as before)."""
+
+    def __init__(self, width: int = 8, classes: int = 10, group_size: int | None = None):
+        super().__init__(width, classes, group_size)
+        for i, module in enumerate(self.features):
+            if isinstance(module, GhostBatchNorm):
+                self.features[i] = PerGroupOnlyBatchNorm(module.num_features, group_size)

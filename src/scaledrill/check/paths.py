@@ -15,7 +15,6 @@ fused path is what really runs on step 0.
 from omegaconf import OmegaConf
 
 from ..backends import LocalCollective
-from ..models.ghost_bn import set_group_size
 from .trajectory import Trajectory
 
 GRAD_PATHS = ("fused", "vmap", "loop")
@@ -54,15 +53,13 @@ def follow(trainer, steps: int) -> Trajectory:
     return out
 
 
-def run_engine(cfg, steps: int, model_hook=None, group_size: int | None = None) -> Trajectory:
-    """One process, local collective. `group_size` overrides BatchNorm's group (synchronised statistics)."""
+def run_engine(cfg, steps: int, model_hook=None) -> Trajectory:
+    """One process, local collective; BatchNorm's statistics follow cfg.train.batchnorm, as in a run."""
     from ..engine import Trainer
 
     trainer = Trainer(cfg, LocalCollective())
     if model_hook is not None:
         model_hook(trainer.model)
-    if group_size is not None:
-        set_group_size(trainer.model, group_size)
     return follow(trainer, steps)
 
 

@@ -3,11 +3,14 @@
 Path names: `accumulation`, `workers:fused|vmap|loop`, `processes:gloo|mpi`, and
 for a user's own step `step:accumulation` (one thread-worker, W·k micro-batches)
 and `step:workers` (W thread-workers). The diagnosis reruns paths with a changed
-model (dropout off), config (float64) or BatchNorm group through `run`.
+model (dropout off) or config (float64) through `run`. Every engine path trains with
+the BatchNorm statistics the check compares (batchnorm.py).
 """
 
 from pathlib import Path
 
+from ..errors import ConfigError
+from .batchnorm import has_batchnorm, path_batchnorm, unserved
 from .paths import GRAD_PATHS, accumulation, variant, virtual
 from .processes import available, process_count, run_processes
 from .reference import reference
@@ -21,9 +24,25 @@ class Runner:
         self.step_fn = load_step(settings.step) if settings.step is not None else None
         self.probes: dict = {}  # path name -> Probe of a user's step
         self.variants = 0
+        self.batchnorm = path_batchnorm(cfg, settings, has_batchnorm(cfg))  # train.batchnorm of every engine path
 
     def plan(self) -> tuple[list[str], dict[str, str]]:
-        """(paths to run, {skipped path: why})."""
+        """(paths to run, {skipped path: why}); ConfigError when nothing is left to compare."""
+        run, skipped = self._wanted()
+        if self.batchnorm == "global":
+            for name in list(run):
+                why = unserved(self.cfg, name)
+                if why is not None:
+                    run.remove(name)
+                    skipped[name] = why
+        if not run:  # a check of no path would claim a match it never tested
+            key = "check.batchnorm" if self.batchnorm == "global" else "check.paths"
+            reasons = "; ".join(f"{name}: {why}" for name, why in skipped.items())
+            raise ConfigError(key, f"none of the requested paths can be compared with the reference ({reasons})")
+        return run, skipped
+
+    def _wanted(self) -> tuple[list[str], dict[str, str]]:
+        """The paths check.paths asks for that this layout and machine can run, and why the others cannot."""
         s, run, skipped = self.settings, [], {}
         wanted_grads = [g for g in GRAD_PATHS if g in s.paths]
         if self.step_fn is not None:
@@ -52,16 +71,17 @@ class Runner:
     def reference(self, batchnorm: str | None = None, model_hook=None) -> Trajectory:
         return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook)
 
-    def run(self, name: str, cfg=None, model_hook=None, group_size: int | None = None) -> Trajectory:
-        cfg, steps = cfg or self.cfg, self.settings.steps
+    def run(self, name: str, cfg=None, model_hook=None) -> Trajectory:
+        given, steps = cfg or self.cfg, self.settings.steps
+        cfg = variant(given, **{"train.batchnorm": self.batchnorm})
         kind, _, detail = name.partition(":")
         if kind == "accumulation":
-            return accumulation(cfg, steps, model_hook=model_hook, group_size=group_size)
+            return accumulation(cfg, steps, model_hook=model_hook)
         if kind == "workers":
-            return virtual(cfg, detail, steps, model_hook=model_hook, group_size=group_size)
+            return virtual(cfg, detail, steps, model_hook=model_hook)
         if kind == "processes":
             self.variants += 1
-            where = self.run_dir if cfg is self.cfg else self.run_dir / f"variant-{self.variants}"
+            where = self.run_dir if given is self.cfg else self.run_dir / f"variant-{self.variants}"
             return run_processes(cfg, detail, steps, where)
         if kind == "step":
             L = cfg.layout

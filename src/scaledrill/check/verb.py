@@ -1,6 +1,7 @@
 """`scaledrill check`: does every way of computing the large batch give the true large batch?
 
-1. validate the recipe and the `check:` node (ConfigError, exit 2, names the key);
+1. validate the recipe and the `check:` node, and plan the paths: which can serve
+   check.batchnorm (batchnorm.py), which run here (ConfigError, exit 2, names the key);
 2. compute the float64 reference trajectory of the true batch (reference.py);
 3. run each path (runner.py) from the same parameters on the same global batches;
 4. compare the first step's averaged gradient per layer and the N-step parameter
@@ -38,7 +39,8 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
     run_dir.mkdir(parents=True, exist_ok=True)
     (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg))
     print(f"{layout.describe()}; reference: float64 true batch, BatchNorm statistics "
-          f"{'per worker micro-batch' if settings.batchnorm == 'worker' else 'over the whole global batch'}")
+          f"{'per worker micro-batch' if settings.batchnorm == 'worker' else 'over the whole global batch'}"
+          f"{'; paths train with train.batchnorm=global' if runner.batchnorm == 'global' else ''}")
 
     tol = Tolerance.for_run(cfg, settings.tolerance_scale)
     ref = runner.reference()  # 2.
