@@ -1,16 +1,22 @@
 """The batch-size ladder on the noisy quadratic model, against its closed form."""
 
 import json
+import os
+import signal
+import sqlite3
+import threading
+import time
 
 import numpy as np
 import pytest
 
 from conftest import make_config, run_cli
 from scaledrill.data.quadratic import b_simple, spectrum, steps_to_target
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.ladder.fit import fit_tradeoff
 from scaledrill.ladder.rungs import plan_ladder
 from scaledrill.ladder.run import ladder_verb, run_rung
+from scaledrill.telemetry.store import read_scalars
 
 DIM, TARGET = 16, 0.05
 QUAD = (
@@ -126,6 +132,14 @@ def test_bad_ladders_name_the_key(overrides, key, words):
     assert err.value.key == key and words in str(err.value)
 
 
+@pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="two rungs side by side need two cores")
+def test_parallel_rungs_count_every_process_they_start():
+    procs = 16 * os.cpu_count()  # the most one run may start here; two such rungs at once are too many
+    with pytest.raises(ConfigError) as err:
+        plan_ladder(ladder_cfg("ladder.parallel=2", f"layout.procs={procs}", f"layout.workers={procs}", "layout.backend=gloo"))
+    assert err.value.key == "ladder.parallel" and f"start {2 * procs} processes" in str(err.value)
+
+
 def test_bad_ladder_from_the_command_line_exits_2(tmp_path):
     done = run_cli("ladder", *QUAD, "layout.workers=3", "layout.procs=3", "layout.backend=gloo", "ladder.batches=[6,8]",
                    f"hydra.run.dir={tmp_path}")
@@ -147,3 +161,42 @@ def test_finished_rungs_are_kept_when_a_later_rung_fails(tmp_path):
     for r in saved["rungs"][:3]:
         assert 0.0 <= r["final_metric"] <= 1.0 and r["steps_to_target"] is None
         assert (tmp_path / f"rung-B{r['global_batch']:04d}" / "summary.json").exists()
+
+
+def test_a_metric_the_task_lacks_names_the_key_and_the_rung(tmp_path):
+    with pytest.raises(ConfigError) as err:
+        ladder_verb(ladder_cfg("layout.workers=4", "ladder.rungs=2", "ladder.target.metric=accuracy"), tmp_path)
+    assert err.value.key == "ladder.target.metric" and "reports loss" in str(err.value) and "rung B=8" in str(err.value)
+    assert not (tmp_path / "rung-B0016").exists()
+
+
+def _signal_once_training(store, give_up_s: float = 60.0) -> None:
+    """SIGINT to this process once the run store holds a step: the rung is inside its training loop."""
+    deadline = time.monotonic() + give_up_s
+    while time.monotonic() < deadline:
+        try:
+            if store.exists() and "loss" in read_scalars(store):
+                break
+        except sqlite3.Error:
+            pass  # the writer holds the lock for a moment; look again
+        time.sleep(0.01)
+    os.kill(os.getpid(), signal.SIGINT)
+
+
+def test_a_signal_stops_the_ladder_instead_of_starting_the_next_rung(tmp_path):
+    # the target is out of reach, so the first rung is still training when the signal comes
+    cfg = ladder_cfg("layout.workers=2", "ladder.rungs=2", "ladder.target.value=1e-9", "ladder.check_every=1000",
+                     "ladder.max_steps=5000", "telemetry.flush_every=1")
+    stray = []  # a signal outside the training loop lands here, not in pytest
+    previous = signal.signal(signal.SIGINT, lambda *frame: stray.append(frame))
+    sender = threading.Thread(target=_signal_once_training, args=(tmp_path / "rung-B0004" / "run.sqlite",))
+    try:
+        sender.start()
+        with pytest.raises(Interrupted, match="stopped by a signal"):
+            ladder_verb(cfg, tmp_path)
+    finally:
+        sender.join()
+        signal.signal(signal.SIGINT, previous)
+    assert not stray
+    assert list((tmp_path / "rung-B0004" / "checkpoints").glob("*.pt"))  # the interrupted rung saved its step
+    assert not (tmp_path / "rung-B0008").exists() and not (tmp_path / "ladder.json").exists()

@@ -9,11 +9,12 @@ Steps:
 1. plan and check every rung (rungs.py) before anything trains;
 2. run each rung under the run's scaling rule into LADDER_DIR/rung-B<B>/
    (summary.json, run.sqlite), stopping at the target or at the sample budget;
-   the local backend trains in this process, gloo and mpi through `run_verb`;
+   the local backend trains in this process, gloo and mpi through `run_verb`
+   (they train the whole budget; the first hit is read back from their history);
 3. optionally search the rung's lr window (search.py);
 4. after every rung rewrite ladder.json atomically, so finished rungs survive a
    later failure; a rung that raises is recorded with its error and the ladder
-   goes on (bad configuration, ConfigError, stops it);
+   goes on (bad configuration, ConfigError, and a signal stop it);
 5. print the table and the fit.
 """
 
@@ -30,7 +31,7 @@ from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
 from rich.table import Table
 
 from ..backends import LocalCollective
-from ..errors import ConfigError
+from ..errors import ConfigError, Interrupted
 from ..optim.scaling import scaled_lr
 from ..runs import prepare_run_dir, run_verb, write_json
 from .fit import fit_tradeoff, regime
@@ -64,14 +65,19 @@ def _in_process(cfg, plan: Plan, run_dir: Path, tick) -> tuple[dict, Watch]:
 
 
 def _launched(cfg, plan: Plan, run_dir: Path) -> tuple[dict, Watch]:
-    """gloo/mpi rungs cannot stop at the target; read the first hit from their history."""
+    """gloo/mpi rungs cannot stop at the target: they run their whole budget, and the first
+    hit is read back from their history at the steps a Watch would have checked."""
     from ..telemetry.store import read_scalars
 
     cfg.train.eval_every = plan.check_every
     summary = run_verb(cfg, run_dir)
+    scalars = read_scalars(run_dir / "run.sqlite")
     if plan.target.metric == TRAIN_LOSS:
-        steps, values = read_scalars(run_dir / "run.sqlite")["loss"]
-        pairs = [(int(s) + 1, float(v)) for s, v in zip(steps, values) if (s + 1) % plan.check_every == 0]
+        steps, values = scalars["loss"]
+        # the store keys a step by its index before the update, Watch by the steps done; like
+        # Watch, check the last step of the budget too
+        checked = [(int(s) + 1, float(v)) for s, v in zip(steps, values)]
+        pairs = [(s, v) for s, v in checked if s % plan.check_every == 0 or s == cfg.train.steps]
     else:
         pairs = sorted((int(k), v.get(plan.target.metric, math.nan)) for k, v in summary["eval_history"].items())
     watch = Watch(plan.target, plan.check_every)
@@ -80,7 +86,19 @@ def _launched(cfg, plan: Plan, run_dir: Path) -> tuple[dict, Watch]:
         if plan.target.met(value):
             watch.reached_step = step
             break
+    if watch.reached_step is not None:
+        # an in-process rung stops at the hit: its noise scale is the one measured up to there, and
+        # a divergence later in the budget is not the rung's
+        summary = dict(summary, noise_scale=_logged_at(scalars, "b_simple", watch.reached_step),
+                       diverged=summary["diverged"] and summary["steps"] <= watch.reached_step)
     return summary, watch
+
+
+def _logged_at(scalars: dict, name: str, step: int) -> float | None:
+    """The store's value of `name` after `step` steps; None when missing or not finite."""
+    steps, values = scalars.get(name, ((), ()))
+    found = [float(v) for s, v in zip(steps, values) if int(s) + 1 == step]
+    return found[0] if found and math.isfinite(found[0]) else None
 
 
 def run_rung(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: None, lr: float | None = None) -> dict:
@@ -88,20 +106,17 @@ def run_rung(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: No
     record of ladder.json, with an `error` key if it raised."""
     run_cfg = rung_config(cfg, rung, lr=lr)
     run_dir = ladder_dir / rung.name
-    out = {
-        "global_batch": rung.global_batch, "workers": rung.workers, "micro_batch": cfg.layout.micro_batch,
-        "accum": rung.accum, "lr": rung_lr(run_cfg), "steps_to_target": None, "samples_to_target": None,
-        "final_metric": None, "diverged": False, "noise_scale": None, "wall_seconds": None, "regime": None,
-        "run_dir": str(run_dir),
-    }
+    out = _record(run_cfg, rung, run_dir)
     started = time.perf_counter()
     try:
         if run_cfg.layout.backend == "local":
             summary, watch = _in_process(run_cfg, plan, run_dir, tick)
         else:
             summary, watch = _launched(run_cfg, plan, run_dir)
-    except (ConfigError, KeyboardInterrupt):
-        raise
+    except ConfigError as err:
+        raise ConfigError(err.key, f"{err.rule} — at rung B={rung.global_batch}", err.value) from None
+    except (Interrupted, KeyboardInterrupt):
+        raise  # the user stopped the ladder: no later rung may start
     except Exception as err:  # noqa: BLE001 - recorded; the ladder goes on
         out.update(error=f"{type(err).__name__}: {err}", wall_seconds=time.perf_counter() - started)
         return out
@@ -114,6 +129,16 @@ def run_rung(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: No
         noise_scale=summary.get("noise_scale"), wall_seconds=summary.get("wall_seconds"),
     )
     return out
+
+
+def _record(run_cfg, rung: Rung, run_dir: Path) -> dict:
+    """A rung's record of ladder.json before it trains."""
+    return {
+        "global_batch": rung.global_batch, "workers": rung.workers, "micro_batch": run_cfg.layout.micro_batch,
+        "accum": rung.accum, "lr": rung_lr(run_cfg), "steps_to_target": None, "samples_to_target": None,
+        "final_metric": None, "diverged": False, "noise_scale": None, "wall_seconds": None, "regime": None,
+        "run_dir": str(run_dir),
+    }
 
 
 def _rung_and_search(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: None) -> tuple[dict, dict | None]:
@@ -131,6 +156,19 @@ def _job(container: dict, plan: Plan, rung: Rung, ladder_dir: str) -> tuple[dict
 
     torch.set_num_threads(1)
     return _rung_and_search(OmegaConf.create(container), plan, rung, Path(ladder_dir))
+
+
+def _collected(job, cfg, rung: Rung, ladder_dir: Path) -> tuple[dict, dict | None]:
+    """The outcome of a pool job; a job that died (its process killed, out of memory) is
+    recorded against its rung like a rung that raised, and the ladder goes on."""
+    try:
+        return job.result()
+    except (ConfigError, Interrupted, KeyboardInterrupt):
+        raise
+    except Exception as err:  # noqa: BLE001 - recorded; the ladder goes on
+        out = _record(rung_config(cfg, rung), rung, ladder_dir / rung.name)
+        out.update(error=f"{type(err).__name__}: {err}")
+        return out, None
 
 
 def _finite(value):
@@ -190,10 +228,14 @@ def ladder_verb(cfg, run_dir: Path) -> Outcome:
         else:
             container = OmegaConf.to_container(cfg)
             with ProcessPoolExecutor(cfg.ladder.parallel, mp_context=get_context("spawn")) as pool:
-                jobs = [pool.submit(_job, container, plan, rung, str(run_dir)) for rung in plan.rungs]
-                for job in as_completed(jobs):
-                    keep(*job.result())
-                    display.done(results[-1])
+                jobs = {pool.submit(_job, container, plan, rung, str(run_dir)): rung for rung in plan.rungs}
+                try:
+                    for job in as_completed(jobs):
+                        keep(*_collected(job, cfg, jobs[job], run_dir))
+                        display.done(results[-1])
+                except BaseException:
+                    pool.shutdown(cancel_futures=True)  # the queued rungs must not train once the ladder stops
+                    raise
     payload = ladder_json(plan, results, searches)
     Console().print(render_ladder(payload))
     return Outcome(payload)

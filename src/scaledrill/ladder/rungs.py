@@ -19,6 +19,7 @@ from dataclasses import dataclass
 from omegaconf import OmegaConf
 
 from ..errors import ConfigError
+from ..runs import PROCS_PER_CORE
 from ..validate import validate_run
 
 MODES = ("workers", "accum")
@@ -140,6 +141,10 @@ def plan_ladder(cfg) -> Plan:
     parallel = _whole(node, "parallel")
     if parallel > (os.cpu_count() or 1):
         raise ConfigError("ladder.parallel", f"must be at most the {os.cpu_count()} cores of this machine", parallel)
+    procs = parallel * cfg.layout.procs  # rungs side by side, each with its own processes
+    if procs > PROCS_PER_CORE * (os.cpu_count() or 1):
+        raise ConfigError("ladder.parallel", f"{parallel} rungs of layout.procs={cfg.layout.procs} processes start {procs} "
+                          f"processes; at most {PROCS_PER_CORE * (os.cpu_count() or 1)} on these {os.cpu_count()} cores", parallel)
     rungs = []
     for batch in batches_of(cfg):
         workers, accum = layout_of(cfg, node.mode, batch)
