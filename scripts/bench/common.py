@@ -33,3 +33,11 @@ def trainer(*overrides: str, workers: int = WORKERS, micro: int = MICRO, collect
     from scaledrill.engine import Trainer
 
     return Trainer(config(*overrides, workers=workers, micro=micro), collective or LocalCollective())
+
+
+def step0_fetch(tr):
+    """A function that gathers this process's samples of step 0 from the training set,
+    as any hand-written loop indexes its batch each step (the baselines do it too)."""
+    index = tr.sampler.worker_batches(0, tr.workers)[0].reshape(-1)
+    data = tr.task.data.train
+    return lambda: data.take(index)

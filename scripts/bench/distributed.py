@@ -21,7 +21,7 @@ import torch.multiprocessing as mp
 
 from scaledrill.sync.layer import DEFAULTS as SYNC_DEFAULTS
 
-from .common import MICRO, WORKERS, pin_threads, trainer
+from .common import MICRO, WORKERS, pin_threads, step0_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 PROCS = 2
@@ -45,10 +45,11 @@ def ddp_step(tr):
     model = DistributedDataParallel(copy.deepcopy(tr.model))
     node = tr.cfg.optim
     opt = torch.optim.SGD(model.parameters(), lr=tr.recipe.lr_at(0), momentum=node.get("momentum", 0.0))
-    batch = tr._micro_batches(0)[0]
+    fetch = step0_fetch(tr)
     loss, share = tr.task.loss, tr.layout.global_batch / PROCS
 
     def step():
+        batch = fetch()
         opt.zero_grad(set_to_none=True)
         (loss(model(batch["input"]), batch) / share).backward()
         opt.step()

@@ -12,7 +12,7 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
-from .common import MICRO, ROOT, WORKERS, trainer
+from .common import MICRO, ROOT, WORKERS, step0_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 COMPRESSORS = ("fp16", "bf16", "topk", "randk", "sign", "qsgd", "powersgd")
@@ -22,16 +22,18 @@ CAPPED = {"topk": "<= 1.5", "powersgd": "<= 1.5"}
 def plain_step(tr):
     """A hand-written torch step on the engine's first 512 samples: the physical limit.
 
-    Same model (deep-copied, ghost batch norm included), same samples, the loss as
-    a mean over the global batch, backward, torch SGD with the recipe's momentum.
+    Same model (deep-copied, ghost batch norm included), same samples gathered from
+    the training set, the loss as a mean over the global batch, backward, torch SGD
+    with the recipe's momentum.
     """
     model = copy.deepcopy(tr.model)
     node = tr.cfg.optim
     opt = torch.optim.SGD(model.parameters(), lr=tr.recipe.lr_at(0), momentum=node.get("momentum", 0.0))
-    batch = tr._micro_batches(0)[0]
+    fetch = step0_fetch(tr)
     loss, count = tr.task.loss, float(tr.layout.global_batch)
 
     def step():
+        batch = fetch()
         opt.zero_grad(set_to_none=True)
         (loss(model(batch["input"]), batch) / count).backward()
         opt.step()
@@ -42,7 +44,7 @@ def plain_step(tr):
 def paths(rounds: int, loop_rounds: int) -> list[Row]:
     """fused vs plain torch; vmap vs fused; loop vs vmap (W=64, b=8, B=512)."""
     fused, vm, lp = (trainer(f"train.grads={p}") for p in ("fused", "vmap", "loop"))
-    fast = interleave({"plain": plain_step(fused), "fused": fused.step, "vmap": vm.step}, rounds, block=2, warmup=3)
+    fast = interleave({"plain": plain_step(fused), "fused": fused.step, "vmap": vm.step}, rounds, block=5, warmup=3)
     slow = interleave({"vmap": vm.step, "loop": lp.step}, loop_rounds, block=1, warmup=1)
     setting = f"W={WORKERS}, b={MICRO}"
     times = {k: f"{ms(v):.1f} ms" for k, v in fast.items()} | {"loop": f"{ms(slow['loop']):.0f} ms"}
