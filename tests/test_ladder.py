@@ -192,7 +192,7 @@ def test_a_signal_stops_the_ladder_instead_of_starting_the_next_rung(tmp_path):
     sender = threading.Thread(target=_signal_once_training, args=(tmp_path / "rung-B0004" / "run.sqlite",))
     try:
         sender.start()
-        with pytest.raises(Interrupted, match="stopped by a signal"):
+        with pytest.raises(Interrupted, match="stopped by a signal during rung B=4 .*no rung had finished"):
             ladder_verb(cfg, tmp_path)
     finally:
         sender.join()
