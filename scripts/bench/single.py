@@ -55,7 +55,7 @@ def paths(rounds: int, loop_rounds: int) -> list[Row]:
             ">= 3", note=f"{setting}; vmap {ms(slow['vmap']):.1f} ms, loop {times['loop']}"),
         Row("vmap step / fused step", ratios(fast, "vmap", "fused")["median"], ratios(fast, "vmap", "fused"),
             "<= 2.0", note=f"{setting}; vmap {times['vmap']}; dominated by per-worker weight gradients "
-            "(convolution backward batched over W) and BatchNorm's elementwise backward per worker group"),
+            "(the convolution weight gradient as a grouped convolution over W)"),
     ]
 
 
