@@ -1,7 +1,6 @@
 """`scaledrill replay`: variants from a checkpoint, bitwise continuation, the divergence demo."""
 
 import json
-import math
 
 import numpy as np
 import pytest

@@ -20,7 +20,6 @@ errors add up step after step, so their tolerance grows linearly with t.
 import math
 from dataclasses import dataclass, field
 
-import torch
 
 C = 32.0
 UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}

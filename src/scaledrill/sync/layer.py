@@ -17,7 +17,6 @@ The result is identical on every process and does not depend on P.
 
 import math
 from dataclasses import fields, is_dataclass, replace
-from functools import partial
 
 import torch
 
