@@ -8,7 +8,7 @@ from pathlib import Path
 from hydra import compose, initialize_config_dir
 
 ROOT = Path(__file__).resolve().parents[1]
-CONFIGS = str(ROOT / "configs")
+CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
 SCALEDRILL = [sys.executable, "-m", "scaledrill.cli"]
 
 

@@ -7,9 +7,9 @@ step(model, loss, micro_batches, reduce) leaves the true batch's gradient in p.g
 import torch
 from torch import nn
 
-from scaledrill.check.dropout import KeyedDropout, content_keys
-from scaledrill.models.digits_cnn import DigitsNet
-from scaledrill.models.ghost_bn import GhostBatchNorm
+from scaledrill.nn.dropout import KeyedDropout, content_keys
+from scaledrill.nn.ghost_bn import GhostBatchNorm
+from scaledrill.tasks.digits import DigitsNet
 
 
 def _global_scale(loss, micro_batches, reduce) -> float:

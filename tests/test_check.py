@@ -6,15 +6,13 @@ import pytest
 import torch
 import torch.nn.functional as F
 
-from scaledrill.check import check_verb
+from conftest import make_config
 from scaledrill.check.reference import reference
 from scaledrill.check.tolerance import C, Tolerance
-from scaledrill.data.digits import DigitsData
-from scaledrill.data.sampler import Sampler
+from scaledrill.commands.check import check_verb
 from scaledrill.layout import Layout
-from scaledrill.models.digits_cnn import DigitsNet
-
-from conftest import make_config
+from scaledrill.tasks.digits import DigitsData, DigitsNet
+from scaledrill.tasks.sampler import Sampler
 
 DIGITS = ("task=digits", "task.model.width=4", "layout.workers=4", "layout.micro_batch=8", "layout.accum=2")
 TEACHER = ("task=teacher", "task.model.hidden=32", "layout.workers=4", "layout.micro_batch=8", "layout.accum=2")

@@ -12,20 +12,18 @@ import torch
 import torch.nn.functional as F
 from omegaconf import OmegaConf
 
-from scaledrill.check import check_verb
+from conftest import make_config
 from scaledrill.check.paths import variant
 from scaledrill.check.processes import run_processes
 from scaledrill.check.reference import reference
 from scaledrill.check.runner import Runner
 from scaledrill.check.settings import read_settings
 from scaledrill.check.tolerance import Tolerance, compare
-from scaledrill.data.digits import DigitsData
-from scaledrill.data.sampler import Sampler
+from scaledrill.commands.check import check_verb
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
-from scaledrill.models.digits_cnn import DigitsNet
-
-from conftest import make_config
+from scaledrill.tasks.digits import DigitsData, DigitsNet
+from scaledrill.tasks.sampler import Sampler
 
 # k = 1: train.batchnorm=global normalises all W·b = B = 16 samples of the step at once
 DIGITS = ("task=digits", "task.model.width=4", "layout.workers=4", "layout.micro_batch=4", "layout.accum=1",

@@ -6,9 +6,8 @@ import subprocess
 
 import torch
 
-from scaledrill.sync.tree import pairwise_sum
-
 from conftest import ROOT, SCALEDRILL
+from scaledrill.sync.tree import pairwise_sum
 
 RECIPE = ("task=teacher", "task.model.hidden=16", "layout.workers=8", "layout.micro_batch=4", "train.steps=20",
           "train.eval_every=0", "train.progress=false")

@@ -7,9 +7,8 @@ hand-written autograd).
 
 import json
 
-from scaledrill.check import check_verb
-
 from conftest import make_config
+from scaledrill.commands.check import check_verb
 
 SMALL = ("layout.workers=4", "layout.micro_batch=4", "layout.accum=2", "check.steps=2")
 TEACHER = ("task=teacher", "task.model.hidden=16", *SMALL)

@@ -7,8 +7,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from scaledrill.cluster_log import ClusterLog, departure_step, parse_cluster_log, read_cluster_log
 from scaledrill.errors import DataError
+from scaledrill.replay.cluster_log import ClusterLog, departure_step, parse_cluster_log, read_cluster_log
 
 
 def test_reads_required_optional_and_ignores_other_columns(tmp_path):

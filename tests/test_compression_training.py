@@ -2,10 +2,9 @@
 without error feedback it is measurably worse (Stich, Cordonnier, Jaggi 2018; Karimireddy
 et al. 2019: error feedback recovers the convergence that biased compressors lose)."""
 
-from scaledrill.backends import LocalCollective
-from scaledrill.engine import run_training
-
 from conftest import make_config
+from scaledrill.dist import LocalCollective
+from scaledrill.train.engine import run_training
 
 RECIPE = ("task=digits", "layout.workers=8", "layout.micro_batch=16", "train.steps=400", "train.eval_every=0", "telemetry.noise_every=0")
 

@@ -5,10 +5,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from omegaconf import OmegaConf
 
-from scaledrill.errors import ConfigError
-from scaledrill.validate import validate_run
-
 from conftest import make_config
+from scaledrill.config.validate import validate_run
+from scaledrill.errors import ConfigError
 
 KEYS = [
     "layout.workers", "layout.procs", "layout.micro_batch", "layout.accum", "layout.backend",

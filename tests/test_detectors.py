@@ -9,7 +9,7 @@ from scaledrill.errors import ConfigError
 from scaledrill.telemetry import validate
 from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, build_detectors
 
-DEFAULT_YAML = Path(__file__).parents[1] / "configs" / "telemetry" / "default.yaml"
+DEFAULT_YAML = Path(__file__).parents[1] / "src" / "scaledrill" / "conf" / "telemetry" / "default.yaml"
 
 
 def healthy(steps=1000, seed=0):

@@ -3,11 +3,10 @@ and the demo task learns."""
 
 import torch
 
-from scaledrill.backends import LocalCollective
-from scaledrill.engine import Trainer, run_training
-from scaledrill.grads import flatten_params
-
 from conftest import make_config
+from scaledrill.dist import LocalCollective
+from scaledrill.train.engine import Trainer, run_training
+from scaledrill.train.grads import flatten_params
 
 # float64 rounding: each gradient entry is a sum of at most B terms, so differences
 # between summation orders stay below B·eps64·Σ|terms| ≈ 1e-13 relative here.

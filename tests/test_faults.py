@@ -93,7 +93,7 @@ def _mpi_rank_pid(run_dir: Path, rank: int) -> int | None:
             environ = (proc / "environ").read_bytes().split(b"\0")
         except OSError:
             continue
-        if b"scaledrill.worker" in cmdline and str(run_dir).encode() in cmdline and f"PMI_RANK={rank}".encode() in environ:
+        if b"scaledrill.dist.rank" in cmdline and str(run_dir).encode() in cmdline and f"PMI_RANK={rank}".encode() in environ:
             return int(proc.name)
     return None
 

@@ -13,11 +13,21 @@ from omegaconf import OmegaConf
 
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import (
-    ALGORITHMS, CAUTION, Cluster, allreduce_seconds, devices_for, flops_per_sample, forecast_json,
-    param_bytes, project_rungs, project_step, render_forecast, validate,
+    ALGORITHMS,
+    CAUTION,
+    Cluster,
+    allreduce_seconds,
+    devices_for,
+    flops_per_sample,
+    forecast_json,
+    param_bytes,
+    project_rungs,
+    project_step,
+    render_forecast,
+    validate,
 )  # fmt: skip
 
-EXAMPLE = Path(__file__).resolve().parents[1] / "configs" / "forecast" / "example.yaml"
+EXAMPLE = Path(__file__).resolve().parents[1] / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"
 
 # ---------------------------------------------------------------- collectives
 

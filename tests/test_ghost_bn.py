@@ -12,7 +12,7 @@ import torch
 from torch import nn
 from torch.func import functional_call, grad, vmap
 
-from scaledrill.models import GhostBatchNorm, convert_batchnorm, set_group_size
+from scaledrill.nn import GhostBatchNorm, convert_batchnorm, set_group_size
 
 ATOL = 1e-5
 

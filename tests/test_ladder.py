@@ -11,11 +11,12 @@ import numpy as np
 import pytest
 
 from conftest import make_config, run_cli
-from scaledrill.data.quadratic import b_simple, spectrum, steps_to_target
+from scaledrill.commands.ladder import ladder_verb
 from scaledrill.errors import ConfigError, Interrupted
+from scaledrill.ladder.climb import run_rung
 from scaledrill.ladder.fit import fit_tradeoff
 from scaledrill.ladder.rungs import plan_ladder
-from scaledrill.ladder.run import ladder_verb, run_rung
+from scaledrill.tasks.quadratic import b_simple, spectrum, steps_to_target
 from scaledrill.telemetry.store import read_scalars
 
 DIM, TARGET = 16, 0.05

@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 from conftest import make_config
-from scaledrill.ladder.run import ladder_verb
+from scaledrill.commands.ladder import ladder_verb
 from scaledrill.telemetry.store import read_scalars
 
 QUAD = (

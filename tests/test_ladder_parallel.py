@@ -8,9 +8,10 @@ import pytest
 import torch
 
 from conftest import make_config
+from scaledrill.commands.ladder import ladder_verb
 from scaledrill.errors import ConfigError
+from scaledrill.ladder.climb import _collected
 from scaledrill.ladder.rungs import plan_ladder
-from scaledrill.ladder.run import _collected, ladder_verb
 from scaledrill.telemetry.store import read_scalars
 
 QUAD = (

@@ -5,9 +5,9 @@ import json
 import pytest
 
 from conftest import make_config
+from scaledrill.commands.ladder import ladder_verb
 from scaledrill.errors import ConfigError
 from scaledrill.ladder.rungs import plan_ladder
-from scaledrill.ladder.run import ladder_verb
 from scaledrill.ladder.search import SearchSettings, search_lr
 
 QUAD = (

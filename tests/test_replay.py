@@ -5,12 +5,12 @@ import json
 import numpy as np
 import pytest
 import torch
-from conftest import make_config
 
+from conftest import make_config
+from scaledrill.commands.replay import replay_verb
 from scaledrill.errors import ConfigError
-from scaledrill.replay import replay_verb
-from scaledrill.runs import run_verb
 from scaledrill.telemetry.store import read_scalars
+from scaledrill.train.run import run_verb
 
 SMALL = ["task=teacher", "layout.workers=4", "layout.micro_batch=8", "train.steps=12", "train.checkpoint_every=4",
          "train.eval_every=0", "train.progress=false", "optim.lr=0.05"]

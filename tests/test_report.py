@@ -7,9 +7,10 @@ from pathlib import Path
 import pytest
 from omegaconf import OmegaConf
 
+from scaledrill.commands.report import report_verb
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
-from scaledrill.report import find_results, report_verb
+from scaledrill.report import find_results
 from scaledrill.telemetry.store import RunStore
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -138,7 +139,7 @@ def make_ladder(directory: Path) -> Path:
 
 def make_forecast(directory: Path) -> Path:
     directory.mkdir(parents=True, exist_ok=True)
-    cluster = validate(OmegaConf.load(ROOT / "configs" / "forecast" / "example.yaml"))
+    cluster = validate(OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"))
     rungs = [{"global_batch": 256, "steps_to_target": 4000}, {"global_batch": 4096, "steps_to_target": 600},
              {"global_batch": 65536, "steps_to_target": None}]  # fmt: skip
     rows = project_rungs(cluster, rungs, 2e9, 4e8, None)

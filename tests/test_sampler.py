@@ -1,9 +1,9 @@
 import pytest
 import torch
 
-from scaledrill.data.sampler import Sampler
 from scaledrill.errors import DataError
 from scaledrill.layout import Layout
+from scaledrill.tasks.sampler import Sampler
 
 
 def _sampler(workers, procs, b=4, k=2, size=1000, tail="drop"):

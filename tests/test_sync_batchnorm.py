@@ -13,11 +13,11 @@ import torch
 import torch.multiprocessing as mp
 
 from conftest import make_config
-from scaledrill.backends import LocalCollective
+from scaledrill.config.validate import validate_run
+from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError
-from scaledrill.models import GhostBatchNorm
-from scaledrill.models.ghost_bn import set_global_statistics
-from scaledrill.validate import validate_run
+from scaledrill.nn import GhostBatchNorm
+from scaledrill.nn.ghost_bn import set_global_statistics
 from test_ghost_bn import _torch_bn
 
 
@@ -74,7 +74,7 @@ def _state(trainer) -> torch.Tensor:
 
 
 def _train(cfg, collective) -> torch.Tensor:
-    from scaledrill.engine import Trainer
+    from scaledrill.train.engine import Trainer
 
     trainer = Trainer(cfg, collective)
     for _ in range(STEPS):
@@ -87,7 +87,7 @@ def _rank(rank, port, container, out_dir):
 
     from omegaconf import OmegaConf
 
-    from scaledrill.backends.gloo import GlooCollective
+    from scaledrill.dist.gloo import GlooCollective
 
     os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port), RANK=str(rank), WORLD_SIZE="2")
     torch.set_num_threads(1)
@@ -151,7 +151,7 @@ def test_global_needs_the_fused_path(overrides, why):
     (("sync.bitwise=true",), "sync.bitwise=true"),
 ])
 def test_the_engine_refuses_global_on_a_per_worker_path(overrides, why):
-    from scaledrill.engine import Trainer
+    from scaledrill.train.engine import Trainer
 
     cfg = make_config("task=digits", "train.batchnorm=global", *overrides)
     with pytest.raises(ConfigError) as err:
@@ -161,7 +161,7 @@ def test_the_engine_refuses_global_on_a_per_worker_path(overrides, why):
 
 
 def test_global_on_the_fused_path_is_accepted():
-    from scaledrill.engine import Trainer
+    from scaledrill.train.engine import Trainer
 
     cfg = make_config("task=digits", "train.batchnorm=global")
     validate_run(cfg)

@@ -6,7 +6,7 @@ import math
 import pytest
 import torch
 
-from scaledrill.backends import LocalCollective
+from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
 from scaledrill.sync import build_sync, validate

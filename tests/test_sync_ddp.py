@@ -17,7 +17,7 @@ from torch.distributed.algorithms.ddp_comm_hooks.default_hooks import bf16_compr
 from torch.distributed.algorithms.ddp_comm_hooks.powerSGD_hook import PowerSGDState, powerSGD_hook
 from torch.nn.parallel import DistributedDataParallel as DDP
 
-from scaledrill.backends.gloo import GlooCollective
+from scaledrill.dist.gloo import GlooCollective
 from scaledrill.layout import Layout
 from scaledrill.sync import build_sync
 

@@ -14,8 +14,8 @@ import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
-from scaledrill.backends import LocalCollective
-from scaledrill.backends.gloo import GlooCollective
+from scaledrill.dist import LocalCollective
+from scaledrill.dist.gloo import GlooCollective
 from scaledrill.layout import Layout
 from scaledrill.sync import build_sync
 from scaledrill.sync.compress import NAMES

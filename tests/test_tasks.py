@@ -16,19 +16,17 @@ import torch
 from hydra import compose, initialize_config_dir
 from torch.func import functional_call, grad, vmap
 
-from scaledrill.data.charlm import CharLMData
-from scaledrill.data.digits import DigitsData
-from scaledrill.data.losses import TokenCrossEntropySum
-from scaledrill.data.quadratic import QuadraticData, b_simple, expected_loss, spectrum, steps_to_target
-from scaledrill.data.stream import hashed_normal, hashed_uniform, mix, mix_int
-from scaledrill.data.tasks import build_task
-from scaledrill.data.teacher import TeacherData
 from scaledrill.errors import ConfigError
-from scaledrill.models import set_group_size
-from scaledrill.models.digits_cnn import DigitsNet
-from scaledrill.models.quadratic import NoisyQuadratic
+from scaledrill.nn import set_group_size
+from scaledrill.nn.keyed_random import hashed_normal, hashed_uniform, mix, mix_int
+from scaledrill.tasks.base import build_task
+from scaledrill.tasks.charlm import CharLMData
+from scaledrill.tasks.digits import DigitsData, DigitsNet
+from scaledrill.tasks.losses import TokenCrossEntropySum
+from scaledrill.tasks.quadratic import NoisyQuadratic, QuadraticData, b_simple, expected_loss, spectrum, steps_to_target
+from scaledrill.tasks.teacher import TeacherData
 
-CONFIGS = Path(__file__).resolve().parents[1] / "configs"
+CONFIGS = Path(__file__).resolve().parents[1] / "src" / "scaledrill" / "conf"
 TASKS = ["digits", "quadratic", "teacher", "charlm"]
 
 

@@ -3,11 +3,10 @@ a healthy run stays quiet; TensorBoard event files when asked."""
 
 import json
 
-from scaledrill.backends import LocalCollective
-from scaledrill.engine import run_training
-from scaledrill.telemetry import read_events, read_layers, read_scalars
-
 from conftest import make_config
+from scaledrill.dist import LocalCollective
+from scaledrill.telemetry import read_events, read_layers, read_scalars
+from scaledrill.train.engine import run_training
 
 BASE = ("task=teacher", "layout.workers=4", "layout.micro_batch=8", "train.eval_every=0", "telemetry.noise_every=0",
         "telemetry.layer_every=1", "optim.lr=0.01", "optim.momentum=0.0")

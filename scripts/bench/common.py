@@ -7,7 +7,7 @@ import torch
 from hydra import compose, initialize_config_dir
 
 ROOT = Path(__file__).resolve().parents[2]
-CONFIGS = str(ROOT / "configs")
+CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
 
 # The setting of the issue: 64 workers of 8 samples, one optimizer step of B = 512.
 WORKERS, MICRO = 64, 8
@@ -29,8 +29,8 @@ def config(*overrides: str, workers: int = WORKERS, micro: int = MICRO):
 
 def trainer(*overrides: str, workers: int = WORKERS, micro: int = MICRO, collective=None):
     """A Trainer on one process (or on `collective`), built as `scaledrill run` would build it."""
-    from scaledrill.backends import LocalCollective
-    from scaledrill.engine import Trainer
+    from scaledrill.dist import LocalCollective
+    from scaledrill.train.engine import Trainer
 
     return Trainer(config(*overrides, workers=workers, micro=micro), collective or LocalCollective())
 

@@ -82,7 +82,7 @@ def allreduce(collective, floats: int, bucket_mib: float, rounds: int) -> dict:
 def _child(rank: int, port: int, threads: int, rounds: int, floats: int, out: str) -> None:
     os.environ.update(MASTER_ADDR="127.0.0.1", MASTER_PORT=str(port), RANK=str(rank), WORLD_SIZE=str(PROCS))
     pin_threads(threads)
-    from scaledrill.backends import open_collective
+    from scaledrill.dist import open_collective
 
     collective = open_collective("gloo", timeout_s=300)
     try:

@@ -43,7 +43,7 @@ class TiledDigits:
     def __init__(self, repeat: int = 1, **kwargs):
         import torch
 
-        from scaledrill.data.digits import DigitsData, TensorSet
+        from scaledrill.tasks.digits import DigitsData, TensorSet
 
         base = DigitsData(**kwargs)
         self.train = TensorSet({k: torch.cat([v] * repeat) for k, v in base.train.tensors.items()})

@@ -89,7 +89,7 @@ def observed(tr, monitor):
 
 def default_noise_period() -> int:
     """`telemetry.noise_every` as the shipped config sets it (the runs above turn it off)."""
-    return int(OmegaConf.load(ROOT / "configs" / "telemetry" / "default.yaml").noise_every)
+    return int(OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "telemetry" / "default.yaml").noise_every)
 
 
 def telemetry(rounds: int) -> list[Row]:
@@ -99,8 +99,8 @@ def telemetry(rounds: int) -> list[Row]:
     noise-scale step (a per-worker step on the fused path) is timed apart: every
     step of `noisy` is one, and its amortised cost at the default period follows.
     """
-    from scaledrill.engine import config_yaml
     from scaledrill.telemetry.monitor import Monitor
+    from scaledrill.train.engine import config_yaml
 
     off = trainer("train.grads=fused")
     on = trainer("train.grads=fused", "telemetry.layer_every=10")

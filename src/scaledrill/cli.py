@@ -1,5 +1,6 @@
 """The command line: `scaledrill VERB [overrides]`, each verb one Hydra app."""
 
+import importlib
 import os
 import sys
 from pathlib import Path
@@ -7,53 +8,27 @@ from pathlib import Path
 import hydra
 from hydra.core.hydra_config import HydraConfig
 
-from .errors import ScaledrillError
+from scaledrill.errors import ScaledrillError
 
-CONFIG_DIR = str(Path(__file__).resolve().parents[2] / "configs")
+CONFIG_DIR = str(Path(__file__).resolve().parent / "conf")  # shipped inside the package
 
+# verb -> (what it does, the function that does it: module:function taking (cfg, output directory))
 VERBS = {
-    "run": "train a recipe on the simulated layout",
-    "recipe": "print the scaled recipe without training",
-    "check": "prove accumulation, virtual workers and processes match the true batch",
-    "replay": "resume a checkpoint with overrides, side by side",
-    "ladder": "run the recipe across growing batch sizes",
-    "forecast": "project step time, time-to-target and cost on a cluster",
-    "report": "render the HTML report of a run directory",
+    "run": ("train a recipe on the simulated layout", "run:run_command"),
+    "recipe": ("print the scaled recipe without training", "recipe:recipe_verb"),
+    "check": ("prove accumulation, virtual workers and processes match the true batch", "check:check_verb"),
+    "replay": ("resume a checkpoint with overrides, side by side", "replay:replay_verb"),
+    "ladder": ("run the recipe across growing batch sizes", "ladder:ladder_verb"),
+    "forecast": ("project step time, time-to-target and cost on a cluster", "forecast:forecast_verb"),
+    "report": ("render the HTML report of a run directory", "report:report_verb"),
 }
 
 _started = False  # becomes True once a verb's own code runs; Hydra's errors come before
 
 
 def _verb_function(verb: str):
-    if verb == "run":
-        from .runs import run_command
-
-        return run_command
-    if verb == "recipe":
-        from .optim.recipe_verb import recipe_verb
-
-        return recipe_verb
-    if verb == "check":
-        from .check import check_verb
-
-        return check_verb
-    if verb == "replay":
-        from .replay import replay_verb
-
-        return replay_verb
-    if verb == "ladder":
-        from .ladder.run import ladder_verb
-
-        return ladder_verb
-    if verb == "forecast":
-        from .forecast_verb import forecast_verb
-
-        return forecast_verb
-    if verb == "report":
-        from .report import report_verb
-
-        return report_verb
-    raise KeyError(verb)
+    module, function = VERBS[verb][1].split(":")
+    return getattr(importlib.import_module(f"scaledrill.commands.{module}"), function)
 
 
 def _app(verb: str):
@@ -80,7 +55,7 @@ def _app(verb: str):
 
 def usage() -> str:
     lines = ["usage: scaledrill VERB [key=value ...]   (Hydra overrides; --cfg job, -m work)", ""]
-    lines += [f"  {verb:<9} {text}" for verb, text in VERBS.items()]
+    lines += [f"  {verb:<9} {text}" for verb, (text, _) in VERBS.items()]
     return "\n".join(lines)
 
 

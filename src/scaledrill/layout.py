@@ -8,7 +8,7 @@ computes depends on its global id, never on P or V, which is what makes 1×64,
 
 from dataclasses import dataclass
 
-from .errors import ConfigError
+from scaledrill.errors import ConfigError
 
 BACKENDS = ("local", "gloo", "mpi")
 

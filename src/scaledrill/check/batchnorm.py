@@ -19,11 +19,11 @@ compute the same thing and paths train with `worker`, which every path serves):
    that leaves nothing to compare.
 """
 
-from ..errors import ConfigError
-from ..models.ghost_bn import GhostBatchNorm
-from ..validate import validate_batchnorm
-from .paths import variant
-from .reference import build_model
+from scaledrill.check.paths import variant
+from scaledrill.check.reference import build_model
+from scaledrill.config.validate import validate_batchnorm
+from scaledrill.errors import ConfigError
+from scaledrill.nn.ghost_bn import GhostBatchNorm
 
 KEY = "check.batchnorm"
 

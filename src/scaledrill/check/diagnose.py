@@ -16,21 +16,13 @@ Checks, in order; each explains some of the failing paths and hands the rest on:
    else a real difference no check here names.
 """
 
-from dataclasses import dataclass
-
 import torch
 
-from ..models.ghost_bn import set_group_size
-from .paths import variant
-from .reference import build_model, global_batches
-from .tolerance import Tolerance, compare, compare_grads
-
-
-@dataclass
-class Finding:
-    cause: str
-    evidence: str
-    fix: str
+from scaledrill.check.findings import Finding
+from scaledrill.check.paths import variant
+from scaledrill.check.reference import build_model, global_batches
+from scaledrill.check.tolerance import Tolerance, compare, compare_grads
+from scaledrill.nn.ghost_bn import set_group_size
 
 
 def _rel(layers) -> float:
@@ -87,7 +79,7 @@ class Diagnosis:
             f"the float64 reference's gradient changes by up to {_rel(moved):.3g} (relative) when only the global random state changes; "
             f"with p=0 in {len(found)} {'/'.join(kinds)} module(s) " + (f"{', '.join(fixed)} match the true batch" if fixed else "no path matches yet")
             + (f"; {', '.join(still)} still differ (see below)" if still else ""),
-            "draw masks keyed on the global sample index: scaledrill.check.dropout.KeyedDropout (keys = micro_batches[m]['index'] "
+            "draw masks keyed on the global sample index: scaledrill.nn.dropout.KeyedDropout (keys = micro_batches[m]['index'] "
             "in a custom step, or content_keys(input) in a model), so every layout drops the same units"))
 
     # 3. -----------------------------------------------------------------------
@@ -167,7 +159,7 @@ class Diagnosis:
                 "compare this path's step function with the protocol in scaledrill.check.threads and the pitfalls in REFERENCES.md"))
 
     def run(self) -> list[Finding]:
-        from .diagnose_step import step_checks
+        from scaledrill.check.diagnose_step import step_checks
 
         self.randomness()
         if self.open:

@@ -14,14 +14,14 @@
 
 import torch
 
-from ..data.sampler import Sampler
-from ..layout import Layout
-from ..models.ghost_bn import set_group_size
-from .diagnose import Finding
-from .paths import variant
-from .reference import build_model
-from .threads import worker_micro_batches
-from .tolerance import compare_grads
+from scaledrill.check.findings import Finding
+from scaledrill.check.paths import variant
+from scaledrill.check.reference import build_model
+from scaledrill.check.threads import worker_micro_batches
+from scaledrill.check.tolerance import compare_grads
+from scaledrill.layout import Layout
+from scaledrill.nn.ghost_bn import set_group_size
+from scaledrill.tasks.sampler import Sampler
 
 
 def laid_out(cfg, name: str):

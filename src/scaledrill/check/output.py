@@ -14,8 +14,8 @@ from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
 
-from ..runs import write_json
-from .tolerance import RULE
+from scaledrill.check.tolerance import RULE
+from scaledrill.io import write_json
 
 OK, BAD = "[green]ok[/]", "[bold red]DIFFERS[/]"
 

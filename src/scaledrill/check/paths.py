@@ -2,7 +2,7 @@
 
 - accumulation: one worker taking the global batch as W·k micro-batches of b
   (layout workers=1, accum=W·k): the same B, so the sampler gives the same samples;
-- virtual workers: W workers in one process through `scaledrill.engine.Trainer`,
+- virtual workers: W workers in one process through `scaledrill.train.engine.Trainer`,
   once per gradient path (fused, vmap, loop);
 - real processes: see processes.py.
 
@@ -14,8 +14,8 @@ fused path is what really runs on step 0.
 
 from omegaconf import OmegaConf
 
-from ..backends import LocalCollective
-from .trajectory import Trajectory
+from scaledrill.check.trajectory import Trajectory
+from scaledrill.dist import LocalCollective
 
 GRAD_PATHS = ("fused", "vmap", "loop")
 
@@ -55,7 +55,7 @@ def follow(trainer, steps: int) -> Trajectory:
 
 def run_engine(cfg, steps: int, model_hook=None) -> Trajectory:
     """One process, local collective; BatchNorm's statistics follow cfg.train.batchnorm, as in a run."""
-    from ..engine import Trainer
+    from scaledrill.train.engine import Trainer
 
     trainer = Trainer(cfg, LocalCollective())
     if model_hook is not None:

@@ -1,20 +1,23 @@
 """The real-processes path: P operating-system processes over gloo or MPI.
 
 The recipe is laid out on P processes (V = W/P workers each) and started through
-the project's launcher, each process running `python -m scaledrill.check.worker
-DIR`. Rank 0 writes DIR/trajectory.pt (the same record as every other path), plus
+the project's launcher, each process running `python -m scaledrill.dist.rank
+DIR scaledrill.check.processes:follow_as_rank`. Rank 0 writes DIR/trajectory.pt (the same record as every other path), plus
 how far the other ranks' final parameters are from its own.
 """
 
+import os
 from pathlib import Path
 
 import torch
 from omegaconf import OmegaConf
 
-from ..backends.launch import check_backend_available, launch
-from ..errors import ConfigError
-from .paths import engine_config
-from .trajectory import Trajectory
+from scaledrill.check.paths import engine_config, follow
+from scaledrill.check.trajectory import Trajectory
+from scaledrill.dist.launch import check_backend_available, launch
+from scaledrill.errors import ConfigError
+from scaledrill.train.engine import Trainer
+from scaledrill.train.grads import flatten_params
 
 RESULT = "trajectory.pt"
 
@@ -44,6 +47,22 @@ def run_processes(cfg, backend: str, steps: int, run_dir: Path) -> Trajectory:
     (work / "config.yaml").write_text(OmegaConf.to_yaml(laid, resolve=True))
     (work / RESULT).unlink(missing_ok=True)
     launch(work, backend, procs, address=cfg.layout.get("address", "127.0.0.1"), mpiexec=cfg.layout.get("mpiexec"),
-           module="scaledrill.check.worker")  # a free port each time: the check starts several groups
+           job="scaledrill.check.processes:follow_as_rank")  # a free port each time: the check starts several groups
     return Trajectory.from_dict(torch.load(work / RESULT, weights_only=False))
 
+
+def follow_as_rank(cfg, work: Path, collective) -> None:
+    """One rank of the processes path (run by scaledrill.dist.rank): train `check.steps` steps, rank 0 saves the record."""
+    try:
+        trainer = Trainer(cfg, collective)
+        out = follow(trainer, int(cfg.check.steps))
+        final = flatten_params(trainer.params).double()
+        every = collective.all_gather(final)  # [P, n]: do all ranks hold the same parameters?
+        out.worker_spread = float((every - final).abs().max())
+        if collective.rank == 0:
+            tmp = work / (RESULT + ".tmp")
+            torch.save(out.to_dict(), tmp)
+            os.replace(tmp, work / RESULT)
+        collective.barrier()
+    finally:
+        collective.close()

@@ -13,12 +13,12 @@ cluster computes) or over the whole batch (`global`, the true large batch).
 
 import torch
 
-from ..data.sampler import Sampler
-from ..data.tasks import build_task
-from ..layout import Layout
-from ..models.ghost_bn import set_group_size
-from ..optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
-from .trajectory import Trajectory
+from scaledrill.check.trajectory import Trajectory
+from scaledrill.layout import Layout
+from scaledrill.nn.ghost_bn import set_group_size
+from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from scaledrill.tasks.base import build_task
+from scaledrill.tasks.sampler import Sampler
 
 BATCHNORM = ("worker", "global")
 

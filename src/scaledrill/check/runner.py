@@ -9,13 +9,13 @@ the BatchNorm statistics the check compares (batchnorm.py).
 
 from pathlib import Path
 
-from ..errors import ConfigError
-from .batchnorm import has_batchnorm, path_batchnorm, unserved
-from .paths import GRAD_PATHS, accumulation, variant, virtual
-from .processes import available, process_count, run_processes
-from .reference import reference
-from .threads import load_step, run_step_function
-from .trajectory import Trajectory
+from scaledrill.check.batchnorm import has_batchnorm, path_batchnorm, unserved
+from scaledrill.check.paths import GRAD_PATHS, accumulation, variant, virtual
+from scaledrill.check.processes import available, process_count, run_processes
+from scaledrill.check.reference import reference
+from scaledrill.check.threads import load_step, run_step_function
+from scaledrill.check.trajectory import Trajectory
+from scaledrill.errors import ConfigError
 
 
 class Runner:

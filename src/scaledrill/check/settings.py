@@ -4,8 +4,8 @@ from dataclasses import dataclass
 
 from omegaconf import DictConfig, ListConfig
 
-from ..errors import ConfigError
-from .reference import BATCHNORM
+from scaledrill.check.reference import BATCHNORM
+from scaledrill.errors import ConfigError
 
 PATHS = ("accumulation", "fused", "vmap", "loop", "processes")
 BACKENDS = ("gloo", "mpi")

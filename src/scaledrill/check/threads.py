@@ -33,13 +33,13 @@ from functools import partial
 import torch
 from hydra.utils import get_method
 
-from ..data.sampler import Sampler
-from ..errors import ConfigError, WorkerFailed
-from ..layout import Layout
-from ..models.ghost_bn import set_group_size
-from ..optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
-from .reference import build_model, cast
-from .trajectory import Trajectory
+from scaledrill.check.reference import build_model, cast
+from scaledrill.check.trajectory import Trajectory
+from scaledrill.errors import ConfigError, WorkerFailed
+from scaledrill.layout import Layout
+from scaledrill.nn.ghost_bn import set_group_size
+from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from scaledrill.tasks.sampler import Sampler
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
 

@@ -20,7 +20,6 @@ errors add up step after step, so their tolerance grows linearly with t.
 import math
 from dataclasses import dataclass, field
 
-
 C = 32.0
 UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}
 RULE = "gradient: tol = C·u·√B·max|g_ref| per layer; parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"

@@ -14,8 +14,8 @@ import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 
-from ..errors import ConfigError
-from .collectives import ALGORITHMS
+from scaledrill.errors import ConfigError
+from scaledrill.forecast.collectives import ALGORITHMS
 
 CLUSTER_KEYS = (
     "devices", "devices_per_node", "peak_tflops", "utilization",

@@ -7,8 +7,8 @@ model, and the caution that it is an estimate.
 
 from rich.table import Table
 
-from .cluster import Cluster
-from .project import BACKWARD_SHARE
+from scaledrill.forecast.cluster import Cluster
+from scaledrill.forecast.project import BACKWARD_SHARE
 
 CAUTION = (
     "Estimates from a simple model (alpha-beta all-reduce, a fixed share of peak FLOP/s, "

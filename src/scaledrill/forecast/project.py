@@ -26,8 +26,8 @@ simple on purpose so every term can be read off the forecast:
 import math
 from dataclasses import asdict, dataclass, replace
 
-from .cluster import Cluster
-from .collectives import allreduce_seconds
+from scaledrill.forecast.cluster import Cluster
+from scaledrill.forecast.collectives import allreduce_seconds
 
 BACKWARD_SHARE = 2 / 3
 

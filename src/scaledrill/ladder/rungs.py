@@ -18,9 +18,9 @@ from dataclasses import dataclass
 
 from omegaconf import OmegaConf
 
-from ..errors import ConfigError
-from ..runs import PROCS_PER_CORE
-from ..validate import validate_run
+from scaledrill.config.validate import validate_run
+from scaledrill.errors import ConfigError
+from scaledrill.train.run import PROCS_PER_CORE
 
 MODES = ("workers", "accum")
 TRAIN_LOSS = "train_loss"  # the target metric that reads the step's training loss instead of an evaluation

@@ -27,9 +27,9 @@ from dataclasses import asdict, dataclass, field
 
 import optuna
 
-from ..backends import LocalCollective
-from ..errors import ConfigError
-from .rungs import Plan, Rung, Watch, rung_config
+from scaledrill.dist import LocalCollective
+from scaledrill.errors import ConfigError
+from scaledrill.ladder.rungs import Plan, Rung, Watch, rung_config
 
 PRUNERS = ("halving", "hyperband")
 
@@ -129,7 +129,7 @@ class SearchSettings:
 
 def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings | None = None) -> SearchResult:
     """Search the lr window of `rung` around its rate `lr`; see the module docstring."""
-    from ..engine import run_training
+    from scaledrill.train.engine import run_training
 
     settings = settings or SearchSettings.from_config(cfg.ladder.search, plan.check_every)
     result = SearchResult(rung.global_batch)

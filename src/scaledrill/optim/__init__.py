@@ -1,11 +1,11 @@
 """Large-batch recipe: scaling rules, schedules, parameter groups, clipping, LARS and LAMB."""
 
-from .build import build_optimizer, set_lr
-from .clip import clip_by_global_norm
-from .lamb import LAMB
-from .lars import LARS
-from .recipe import Recipe, render_recipe, resolve_recipe, validate
-from .scaling import scaled_lr
+from scaledrill.optim.build import build_optimizer, set_lr
+from scaledrill.optim.clip import clip_by_global_norm
+from scaledrill.optim.lamb import LAMB
+from scaledrill.optim.lars import LARS
+from scaledrill.optim.recipe import Recipe, render_recipe, resolve_recipe, validate
+from scaledrill.optim.scaling import scaled_lr
 
 __all__ = [
     "LAMB", "LARS", "Recipe", "build_optimizer", "clip_by_global_norm", "render_recipe",

@@ -17,10 +17,10 @@ import torch
 from omegaconf import ListConfig
 from torch.nn import Parameter
 
-from ..errors import ConfigError
-from .groups import param_groups
-from .lamb import LAMB
-from .lars import LARS
+from scaledrill.errors import ConfigError
+from scaledrill.optim.groups import param_groups
+from scaledrill.optim.lamb import LAMB
+from scaledrill.optim.lars import LARS
 
 OPTIMIZERS = ("sgd", "adamw", "lars", "lamb")
 DECAY = {"sgd": ("coupled",), "adamw": ("decoupled", "coupled"), "lars": ("coupled",), "lamb": ("decoupled", "coupled")}

@@ -25,7 +25,7 @@ for each adapted parameter, by name.
 
 import torch
 
-from .lars import norm, safe_ratio
+from scaledrill.optim.lars import norm, safe_ratio
 
 
 def adam_moments(state: dict, g: torch.Tensor, betas: tuple[float, float]) -> tuple[torch.Tensor, torch.Tensor]:

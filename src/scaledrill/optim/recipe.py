@@ -13,11 +13,11 @@ from dataclasses import asdict, dataclass
 
 from rich.table import Table
 
-from ..errors import DataError
-from .build import decay_of, validate_optim
-from .groups import describe_exclusions
-from .scaling import scaled_lr, validate_scaling
-from .schedules import Schedule, build_schedule, check_warmup, validate_schedule
+from scaledrill.errors import DataError
+from scaledrill.optim.build import decay_of, validate_optim
+from scaledrill.optim.groups import describe_exclusions
+from scaledrill.optim.scaling import scaled_lr, validate_scaling
+from scaledrill.optim.schedules import Schedule, build_schedule, check_warmup, validate_schedule
 
 FORMULAS = {
     "none": "lr = base_lr",

@@ -18,7 +18,7 @@ per-worker batch.
 
 from omegaconf import OmegaConf
 
-from ..errors import ConfigError
+from scaledrill.errors import ConfigError
 
 RULES = ("none", "linear", "sqrt", "power")
 

@@ -22,7 +22,7 @@ from 0.
 import math
 from dataclasses import dataclass
 
-from ..errors import ConfigError
+from scaledrill.errors import ConfigError
 
 SHAPES = ("constant", "cosine", "polynomial", "step")
 

@@ -18,9 +18,9 @@ from pathlib import Path
 
 from omegaconf import OmegaConf
 
-from ..errors import ConfigError
-from .html import Section, absent, page
-from .sections import BUILDERS
+from scaledrill.errors import ConfigError
+from scaledrill.report.html import Section, absent
+from scaledrill.report.sections import BUILDERS
 
 SEARCH_DEPTH = 3
 
@@ -61,15 +61,3 @@ def _root(cfg) -> tuple[Path, list[tuple[str, Path]]]:
     if not results:
         raise ConfigError("path", f"holds none of {', '.join(BUILDERS)} (looked {SEARCH_DEPTH} levels down)", str(path))
     return path, results
-
-
-def report_verb(cfg, run_dir: Path) -> None:
-    """Write the report page and print its path; `run_dir` (Hydra's) is not used."""
-    root, results = _root(cfg)
-    debug = bool(cfg.get("debug", False))
-    sections = [_section(name, directory, root, debug) for name, directory in results]
-    out = Path(str(cfg.out)).expanduser() if cfg.get("out") else root / "report.html"
-    if not out.parent.is_dir():
-        raise ConfigError("out", "must be a file in an existing directory", str(out))
-    out.write_text(page(f"scaledrill report: {root.resolve().name}", str(root), sections), encoding="utf-8")
-    print(out)

@@ -11,9 +11,9 @@ from pathlib import Path
 
 import numpy as np
 
-from ..telemetry.store import read_events, read_layers, read_scalars
-from . import figures as fg
-from .html import Section, absent, figure, key_values, table, verdict
+from scaledrill.report import figures as fg
+from scaledrill.report.html import Section, absent, figure, key_values, table, verdict
+from scaledrill.telemetry.store import read_events, read_layers, read_scalars
 
 RUN_KEYS = ("task", "optimizer", "workers", "procs", "micro_batch", "accum", "global_batch", "backend", "sync",
             "steps", "samples_seen", "peak_lr", "final_loss", "noise_scale", "compression_ratio",

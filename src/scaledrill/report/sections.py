@@ -12,11 +12,12 @@ from pathlib import Path
 
 import numpy as np
 
-from ..forecast import CAUTION
-from ..telemetry.store import read_scalars
-from . import figures as fg
-from .html import Section, absent, figure, heading, key_values, paragraph, table, verdict
-from .run_section import load_json, run_section
+from scaledrill.forecast import CAUTION
+from scaledrill.report import figures as fg
+from scaledrill.report.html import Section, absent, figure, heading, key_values, paragraph, table, verdict
+from scaledrill.report.run_section import load_json, run_section
+from scaledrill.telemetry.store import read_scalars
+
 
 def check_section(directory: Path, source: str) -> Section:
     """The equivalence check: verdict, per-path per-layer table, trajectory, diagnosis."""

@@ -19,7 +19,7 @@ from typing import Any
 
 import torch
 
-from .compress import Out
+from scaledrill.sync.compress import Out
 
 
 @dataclass

@@ -20,11 +20,11 @@ from dataclasses import fields, is_dataclass, replace
 
 import torch
 
-from ..errors import ConfigError
-from .buckets import bucketed_sum
-from .compress import NAMES, Round, build, dense_bytes
-from .feedback import ErrorFeedback
-from .tree import tree_sum
+from scaledrill.errors import ConfigError
+from scaledrill.sync.buckets import bucketed_sum
+from scaledrill.sync.compress import NAMES, Round, build, dense_bytes
+from scaledrill.sync.feedback import ErrorFeedback
+from scaledrill.sync.tree import tree_sum
 
 DEFAULTS = {
     "name": "exact",

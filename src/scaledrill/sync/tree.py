@@ -38,7 +38,7 @@ gradients or the parameters, only evaluation, and may differ in the last bits.
 
 import torch
 
-from .buckets import bounds
+from scaledrill.sync.buckets import bounds
 
 
 def pairwise_sum(rows: torch.Tensor) -> torch.Tensor:

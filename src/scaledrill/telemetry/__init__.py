@@ -11,12 +11,12 @@
 
 import math
 
-from ..errors import ConfigError
-from .detectors import build_detectors, validate_detect
-from .incident import write_incident
-from .layers import layer_stats
-from .noise_scale import NoiseScale
-from .store import RunStore, open_store, read_events, read_layers, read_runs, read_scalars
+from scaledrill.errors import ConfigError
+from scaledrill.telemetry.detectors import build_detectors, validate_detect
+from scaledrill.telemetry.incident import write_incident
+from scaledrill.telemetry.layers import layer_stats
+from scaledrill.telemetry.noise_scale import NoiseScale
+from scaledrill.telemetry.store import RunStore, open_store, read_events, read_layers, read_runs, read_scalars
 
 __all__ = [
     "NoiseScale", "RunStore", "build_detectors", "layer_stats", "open_store", "read_events",

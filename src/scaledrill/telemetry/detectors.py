@@ -24,7 +24,7 @@ import statistics
 from dataclasses import dataclass, field
 from typing import Protocol
 
-from ..errors import ConfigError
+from scaledrill.errors import ConfigError
 
 MAD_TO_SIGMA = 1.4826  # 1 / Φ⁻¹(3/4): MAD of a Gaussian times this is its σ
 

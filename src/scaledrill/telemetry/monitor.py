@@ -10,11 +10,11 @@ from collections import deque
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ..errors import ConfigError
-from .detectors import build_detectors
-from .incident import write_incident
-from .noise_scale import NoiseScale
-from .store import RunStore
+from scaledrill.errors import ConfigError
+from scaledrill.telemetry.detectors import build_detectors
+from scaledrill.telemetry.incident import write_incident
+from scaledrill.telemetry.noise_scale import NoiseScale
+from scaledrill.telemetry.store import RunStore
 
 
 @dataclass

@@ -28,7 +28,7 @@ Tuning: `decay` trades lag for noise. 0.95 averages over ~20 steps; raise it
 import math
 from dataclasses import asdict, dataclass
 
-from ..errors import ConfigError
+from scaledrill.errors import ConfigError
 
 
 def estimate_g2(small_sq: float, b_small: float, big_sq: float, b_big: float) -> float:

@@ -21,8 +21,8 @@ the readers turn NULL back into NaN, so a diverged loss reads as NaN.
 import json
 import sqlite3
 from contextlib import closing
-from itertools import groupby
 from datetime import datetime, timezone
+from itertools import groupby
 from pathlib import Path
 
 import numpy as np

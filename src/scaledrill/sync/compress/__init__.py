@@ -83,13 +83,13 @@ def dense_bytes(n: int, dtype: torch.dtype) -> int:
 
 def build(cfg) -> Compressor:
     """The compressor named by `cfg.name`, configured from the other keys of `cfg`."""
-    from .cast import Cast
-    from .exact import Exact
-    from .powersgd import PowerSGD
-    from .qsgd import QSGD
-    from .randk import RandK
-    from .sign import ScaledSign
-    from .topk import TopK
+    from scaledrill.sync.compress.cast import Cast
+    from scaledrill.sync.compress.exact import Exact
+    from scaledrill.sync.compress.powersgd import PowerSGD
+    from scaledrill.sync.compress.qsgd import QSGD
+    from scaledrill.sync.compress.randk import RandK
+    from scaledrill.sync.compress.sign import ScaledSign
+    from scaledrill.sync.compress.topk import TopK
 
     makers = {
         "exact": lambda c: Exact(),

@@ -15,7 +15,7 @@ from dataclasses import dataclass, replace
 
 import torch
 
-from . import Out
+from scaledrill.sync.compress import Out
 
 
 @dataclass(frozen=True)

@@ -2,7 +2,7 @@
 
 from dataclasses import dataclass
 
-from . import Out, Stateless, dense_bytes
+from scaledrill.sync.compress import Out, Stateless, dense_bytes
 
 
 @dataclass(frozen=True)

@@ -28,7 +28,7 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Out, dense_bytes, mix
+from scaledrill.sync.compress import Out, dense_bytes, mix
 
 
 @dataclass

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Out, Stateless
+from scaledrill.sync.compress import Out, Stateless
 
 
 @dataclass(frozen=True)

@@ -16,8 +16,8 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Out, Stateless, dense_bytes
-from .topk import keep_count
+from scaledrill.sync.compress import Out, Stateless, dense_bytes
+from scaledrill.sync.compress.topk import keep_count
 
 
 @dataclass(frozen=True)

@@ -12,7 +12,7 @@ Steps, per worker, over its whole flat gradient:
 import math
 from dataclasses import dataclass
 
-from . import Out, Stateless
+from scaledrill.sync.compress import Out, Stateless
 
 
 @dataclass(frozen=True)

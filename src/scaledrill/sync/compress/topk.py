@@ -17,7 +17,7 @@ from dataclasses import dataclass
 
 import torch
 
-from . import Out, Stateless, dense_bytes
+from scaledrill.sync.compress import Out, Stateless, dense_bytes
 
 
 def keep_count(n: int, fraction: float, count: int | None) -> int:

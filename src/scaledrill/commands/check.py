@@ -1,0 +1,53 @@
+"""`scaledrill check`: does every way of computing the large batch give the true large batch?
+
+1. validate the recipe and the `check:` node, and plan the paths: which can serve
+   check.batchnorm (batchnorm.py), which run here (ConfigError, exit 2, names the key);
+2. compute the float64 reference trajectory of the true batch (reference.py);
+3. run each path (runner.py) from the same parameters on the same global batches;
+4. compare the first step's averaged gradient per layer and the N-step parameter
+   trajectory with rounding-derived tolerances (tolerance.py);
+5. when a path differs, rerun targeted variants to name the cause (diagnose.py);
+6. print the tables and verdict, write RUN_DIR/check.json; exit 0 match, 1 mismatch.
+"""
+
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from omegaconf import OmegaConf
+
+from scaledrill.check import output
+from scaledrill.check.diagnose import diagnose
+from scaledrill.check.runner import Runner
+from scaledrill.check.settings import read_settings
+from scaledrill.check.tolerance import Tolerance, compare
+from scaledrill.config.validate import validate_run
+
+
+@dataclass
+class CheckResult:
+    exit_code: int
+    report: dict = field(default_factory=dict)
+
+
+def check_verb(cfg, run_dir: Path) -> CheckResult:
+    cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    layout = validate_run(cfg)  # 1.
+    settings = read_settings(cfg)
+    runner = Runner(cfg, settings, run_dir)
+    plan, skipped = runner.plan()
+    run_dir = Path(run_dir)
+    run_dir.mkdir(parents=True, exist_ok=True)
+    (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg))
+    print(f"{layout.describe()}; reference: float64 true batch, BatchNorm statistics "
+          f"{'per worker micro-batch' if settings.batchnorm == 'worker' else 'over the whole global batch'}"
+          f"{'; paths train with train.batchnorm=global' if runner.batchnorm == 'global' else ''}")
+
+    tol = Tolerance.for_run(cfg, settings.tolerance_scale)
+    ref = runner.reference()  # 2.
+    runs = {name: runner.run(name) for name in plan}  # 3.
+    results = [compare(name, traj, ref, tol) for name, traj in runs.items()]  # 4.
+    failing = [r for r in results if not r.ok]
+    findings = diagnose(runner, ref, tol, failing, runs) if failing else []  # 5.
+    output.show(results, skipped, findings)  # 6.
+    report = output.save(run_dir, results, skipped, findings)
+    return CheckResult(0 if not failing else 1, report)

@@ -1,0 +1,124 @@
+"""Recover command-line overrides that rebuild a saved, resolved run configuration.
+
+Why: a run directory keeps `config.yaml`, the resolved configuration, but a replay
+must compose new variants the way Hydra would (`optim=lamb` swaps a whole group
+and re-resolves `${optim.lr}` inside `scaling`). So it needs overrides, not values.
+
+How:
+1. For each config group the saved config holds (`optim`, `task`, ...), pick the
+   option file whose literal values agree with the saved node the most.
+2. Compose with those choices; find the first key (in the saved order) whose
+   value differs, add `key=value` (`+key=value` when the key is new, `~key` when
+   the saved config lacks it) and compose again. One key at a time, so a value
+   that follows from an interpolation (`scaling.base_lr: ${optim.lr}`) is not
+   pinned on its own.
+3. Stop when the composition equals the saved config; give up, with a
+   CheckpointError, if it never does.
+"""
+
+from contextlib import contextmanager
+from pathlib import Path
+
+from hydra import compose, initialize_config_dir
+from hydra.core.global_hydra import GlobalHydra
+from omegaconf import OmegaConf
+
+from scaledrill.errors import CheckpointError
+
+CONFIG_DIR = Path(__file__).resolve().parents[1] / "conf"
+IGNORED = ("resume", "hydra")  # set by the caller, or never part of a run's own config
+
+
+@contextmanager
+def hydra_session():
+    """Hydra's compose needs an initialised config search path; inside a verb it already is."""
+    if GlobalHydra.instance().is_initialized():
+        yield
+        return
+    with initialize_config_dir(str(CONFIG_DIR), version_base=None):
+        yield
+
+
+def compose_run(overrides: list[str]):
+    """The `run` config of these overrides (call inside hydra_session)."""
+    return compose("run", overrides=list(overrides))
+
+
+def leaves(node, prefix: str = "") -> dict:
+    """Dotted key -> value of every non-dict value (lists are values; an empty dict is a value)."""
+    if isinstance(node, dict) and node:
+        out = {}
+        for key, value in node.items():
+            out.update(leaves(value, f"{prefix}{key}."))
+        return out
+    return {prefix[:-1]: node}
+
+
+def render(value) -> str:
+    """A value in Hydra's override syntax."""
+    if value is None:
+        return "null"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, (int, float)):
+        return repr(value)
+    if isinstance(value, (list, tuple)):
+        return "[" + ",".join(render(v) for v in value) + "]"
+    if isinstance(value, dict):
+        return "{" + ",".join(f"{k}:{render(v)}" for k, v in value.items()) + "}"
+    return "'" + str(value).replace("\\", "\\\\").replace("'", "\\'") + "'"
+
+
+def _plain(cfg) -> dict:
+    data = OmegaConf.to_container(cfg, resolve=True, throw_on_missing=False)
+    return {k: v for k, v in data.items() if k not in IGNORED}
+
+
+def _group_choices(saved: dict) -> list[str]:
+    """Step 1: the option of each group closest to the saved node (literal values only)."""
+    choices = []
+    for group in sorted(p for p in CONFIG_DIR.iterdir() if p.is_dir() and p.name in saved):
+        mine = leaves(saved[group.name])
+        best, best_score = None, None
+        for option in sorted(group.glob("*.yaml")):
+            theirs = leaves(OmegaConf.to_container(OmegaConf.load(option), resolve=False))
+            score = sum(1 for k, v in theirs.items() if k in mine and mine[k] == v) - len(set(theirs) - set(mine))
+            if best_score is None or score > best_score:
+                best, best_score = option.stem, score
+        if best is not None:
+            choices.append(f"{group.name}={best}")
+    return choices
+
+
+def rebuild_overrides(saved: dict, where: str = "config.yaml") -> list[str]:
+    """Overrides whose composition equals `saved` (a resolved run config, as a dict) key for key."""
+    saved = {k: v for k, v in saved.items() if k not in IGNORED}
+    target = leaves(saved)
+    overrides = _group_choices(saved)
+    with hydra_session():
+        for _ in range(len(target) + 50):
+            try:
+                have = leaves(_plain(compose_run(overrides)))
+            except Exception as err:  # an option or key the configs no longer have
+                raise CheckpointError(f"{where}: cannot rebuild its configuration from configs/ ({type(err).__name__}: {err})") from None
+            step = _first_difference(target, have)  # step 2
+            if step is None:
+                return overrides  # step 3
+            overrides.append(step)
+    raise CheckpointError(f"{where}: cannot rebuild its configuration from configs/ (still differs after {overrides})")
+
+
+def _first_difference(target: dict, have: dict) -> str | None:
+    for key, value in target.items():
+        if key not in have:
+            return f"+{key}={render(value)}"
+        if have[key] != value and not (_nan(value) and _nan(have[key])):
+            return f"{key}={render(value)}"
+    for key in have:
+        if key not in target and not any(t.startswith(key + ".") for t in target):
+            return f"~{key}"
+    return None
+
+
+def _nan(value) -> bool:
+    return isinstance(value, float) and value != value

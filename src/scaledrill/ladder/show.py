@@ -1,0 +1,65 @@
+"""What a ladder shows while it climbs and when it is done: progress bars and the rung table."""
+
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn
+from rich.table import Table
+
+from scaledrill.ladder.rungs import Plan, Rung
+
+
+class LadderDisplay:
+    """A bar over the rungs and one over the current rung's steps (stderr)."""
+
+    def __init__(self, plan: Plan, enabled: bool):
+        self.plan, self.enabled, self.bar = plan, enabled, None
+
+    def __enter__(self):
+        if self.enabled:
+            self.bar = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(), console=Console(stderr=True))
+            self.bar.__enter__()
+            self.rungs = self.bar.add_task("[bold]ladder", total=len(self.plan.rungs))
+            self.steps = self.bar.add_task("rung", total=1, visible=False)
+        return self
+
+    def start(self, rung: Rung):
+        if self.bar is None:
+            return lambda step: None
+        self.bar.reset(self.steps, total=rung.steps, description=f"B={rung.global_batch} steps", visible=True)
+        return lambda step: self.bar.update(self.steps, completed=step)
+
+    def done(self, result: dict) -> None:
+        if self.bar is not None:
+            self.bar.advance(self.rungs)
+
+    def __exit__(self, *exc):
+        if self.bar is not None:
+            self.bar.__exit__(*exc)
+        return False
+
+
+def _g(value, fmt: str = ".4g") -> str:
+    return "-" if value is None else format(value, fmt)
+
+
+def render_ladder(payload: dict) -> Table:
+    t = payload["target"]
+    goal = "no target" if t["value"] is None else f"{t['metric']} {t['mode']} {t['value']:g}"
+    table = Table(title=f"ladder (mode={payload['mode']}, {goal})")
+    for col in ("B", "W·b·k", "lr", "steps", "samples", "final", "diverged", "noise scale", "regime", "wall s"):
+        table.add_column(col, justify="right")
+    for r in payload["rungs"]:
+        steps = r.get("error") or _g(r["steps_to_target"], "d")
+        table.add_row(
+            str(r["global_batch"]), f"{r['workers']}·{r['micro_batch']}·{r['accum']}", _g(r["lr"]), steps,
+            _g(r["samples_to_target"], ","), _g(r["final_metric"]), "yes" if r["diverged"] else "no",
+            _g(r["noise_scale"], ".3g"), r["regime"] or "-", _g(r["wall_seconds"], ".1f"),
+        )
+    fit, noise = payload["fit"], payload["noise_scale_measured"]
+    if fit:
+        table.caption = (
+            f"S_min={_g(fit['s_min'])}  E_min={_g(fit['e_min'])}  B_crit={_g(fit['b_crit'])}  "
+            f"measured noise scale (median)={_g(noise)}  (McCandlish et al. 2018: B_crit ≈ B_noise)"
+        )
+    else:
+        table.caption = "no fit: fewer than two rungs reached the target"
+    return table

@@ -1,0 +1,41 @@
+"""Dropout keyed on the sample: the same mask for a sample on every layout.
+
+A mask drawn from a random generator depends on how many draws came before it: on
+the process, the worker, the micro-batch order. Accumulation, virtual workers and
+real processes then drop other units than the true batch would, and no check can
+tell a bug from that noise. Here the mask of a sample is a pure function of
+(seed, salt, the sample's key, the unit's position), computed with the counter-based
+hash of scaledrill.nn.keyed_random, so it is the same wherever the sample is computed.
+
+Keys: the global sample index is the natural one (a custom step gets it as
+micro_batches[m]["index"]); a model that only sees its input can use
+`content_keys(inputs)`, a hash of each sample's float32 input bits. Change `salt`
+(e.g. to the step number) to draw fresh masks each step.
+"""
+
+import torch
+from torch import nn
+
+from scaledrill.nn.keyed_random import hashed_uniform, mix
+
+
+def content_keys(inputs: torch.Tensor) -> torch.Tensor:
+    """One int64 key per sample (row) from the bits of its values as float32."""
+    bits = inputs.detach().to(torch.float32).reshape(inputs.shape[0], -1).view(torch.int32).to(torch.int64)
+    column = torch.arange(bits.shape[1], dtype=torch.int64) << 32
+    return mix(bits ^ column).sum(dim=1)  # int64 addition wraps: a well-mixed key per row
+
+
+class KeyedDropout(nn.Module):
+    def __init__(self, p: float = 0.5, seed: int = 0):
+        super().__init__()
+        if not 0.0 <= p < 1.0:
+            raise ValueError(f"p must be in [0, 1), got {p}")
+        self.p, self.seed, self.salt = p, seed, 0
+
+    def forward(self, x: torch.Tensor, keys: torch.Tensor) -> torch.Tensor:
+        if not self.training or self.p == 0:
+            return x
+        u = hashed_uniform(self.seed * 1_000_003 + self.salt, keys, x[0].numel(), dtype=x.dtype)
+        keep = (u >= self.p).to(x.dtype).view(x.shape)
+        return x * keep / (1 - self.p)

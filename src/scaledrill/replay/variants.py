@@ -1,0 +1,128 @@
+"""`scaledrill replay`: continue a run from a checkpoint under several overrides, side by side.
+
+Why: after a run diverged (here or on a cluster), the question is which change
+would have saved it. A replay answers by continuing the very same state, step for
+step, with each variant of the recipe, plus the unchanged recipe ("original"),
+which continues bitwise like the run itself did.
+
+How:
+1. Find the checkpoint (`replay.from`: a file, or a run directory, whose newest
+   checkpoint taken before its first detector event is used) and the run
+   directory it belongs to (a file's parent's parent), with its `config.yaml`.
+2. Rebuild the overrides of that config (config_overrides.py) and compose each
+   variant as the original's overrides plus the variant's own, so group swaps
+   (`optim=lamb`) behave as on the command line. Check every variant before any
+   trains: same workers, micro-batch and accumulation as the checkpoint.
+3. A variant that changes the optimizer or the sync layer cannot take their saved
+   state as it is: it gets a start checkpoint in its own directory holding the
+   new optimizer's hyperparameters (and its fresh state when the optimizer kind
+   changed) and a fresh sync state. Everything else (weights, step, data
+   position, telemetry windows, RNG) is the checkpoint's.
+4. Run each variant into `variant-NAME/` with runs.run_verb, then show them
+   (replay_show.py) and write `replay.json`.
+"""
+
+import re
+import shlex
+from pathlib import Path
+
+import torch
+from omegaconf import OmegaConf
+
+from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides
+from scaledrill.errors import CheckpointError, ConfigError
+from scaledrill.telemetry.store import read_events
+from scaledrill.train import checkpoint
+
+NAME = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+def find_source(where) -> tuple[Path, Path]:
+    """Step 1: (checkpoint file, run directory of the run that wrote it)."""
+    path = Path(str(where))
+    if path.is_dir():
+        run_dir = path.parent if path.name == "checkpoints" else path
+        return _before_first_event(run_dir), run_dir
+    ckpt = checkpoint.find(path)
+    return ckpt, ckpt.parent.parent
+
+
+def _before_first_event(run_dir: Path) -> Path:
+    """The newest checkpoint whose weights predate the first detector event (all of them if none)."""
+    found = sorted((run_dir / "checkpoints").glob("step-*.pt"))
+    store = run_dir / "run.sqlite"
+    events = [e["step"] for e in read_events(store) if e["kind"] == "detector"] if store.is_file() else []
+    if events:  # the loss at step e was computed with the weights after e steps: those are already bad
+        found = [p for p in found if int(p.stem.split("-")[1]) < min(events)]
+    if not found:
+        raise CheckpointError(f"replay.from: no checkpoint in {run_dir / 'checkpoints'}" + (f" before step {min(events)}, where a detector fired" if events else ""))
+    return found[-1]
+
+
+def variant_overrides(node) -> dict[str, list[str]]:
+    """`replay.variants` as name -> override list; a string value is split like a shell line."""
+    out = {}
+    for name, value in (OmegaConf.to_container(node, resolve=True) if node is not None else {}).items():
+        key = f"replay.variants.{name}"
+        if not NAME.match(str(name)) or name == "original":
+            raise ConfigError(key, "a variant name is letters, digits, - or _, and not 'original' (that one is always run)", name)
+        items = shlex.split(value) if isinstance(value, str) else value
+        if not isinstance(items, list) or not all(isinstance(s, str) and ("=" in s or s.startswith("~")) for s in items):
+            raise ConfigError(key, "must be a list of overrides like schedule.warmup_steps=50", value)
+        if any(s.split("=")[0].lstrip("+~") in ("resume", "train.steps") for s in items):
+            raise ConfigError(key, "resume and train.steps are set by the replay (replay.from, replay.steps)", value)
+        out[str(name)] = list(items)
+    return out
+
+
+def compose_variants(saved: dict, where: str, ckpt: Path, steps: int, variants: dict) -> dict:
+    """Step 2: name -> resolved run config, the original first."""
+    base = rebuild_overrides(saved, where)
+    out = {}
+    with hydra_session():
+        for name, extra in {"original": [], **variants}.items():
+            try:
+                cfg = compose_run([*base, *extra, f"train.steps={steps}", f"resume={render_path(ckpt)}"])
+            except Exception as err:
+                raise ConfigError(f"replay.variants.{name}", f"cannot compose ({type(err).__name__}: {err})", extra) from None
+            out[name] = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    return out
+
+
+def render_path(path: Path) -> str:
+    return "'" + str(path).replace("\\", "\\\\").replace("'", "\\'") + "'"
+
+
+def check_layout(name: str, cfg, state: dict) -> None:
+    for key in ("workers", "micro_batch", "accum"):
+        if cfg.layout[key] != state["layout"][key]:
+            raise ConfigError(
+                f"replay.variants.{name}",
+                f"changes layout.{key} to {cfg.layout[key]}, but the checkpoint was made with {state['layout'][key]}; "
+                "a replay may change layout.procs and layout.backend only",
+            )
+
+
+def start_checkpoint(cfg, original, state: dict, directory: Path) -> Path | None:
+    """Step 3: a start checkpoint for a variant whose optimizer or sync differs; None when the saved one serves."""
+    new_optim, new_sync = cfg.optim != original.optim, cfg.sync != original.sync
+    if not (new_optim or new_sync):
+        return None
+    from scaledrill.dist import LocalCollective
+    from scaledrill.train.engine import Trainer
+
+    local = OmegaConf.merge(cfg, {"layout": {"procs": 1, "backend": "local"}, "resume": None})
+    fresh = checkpoint.collect(Trainer(local, LocalCollective()), None)
+    derived = {k: v for k, v in state.items() if k != "path"}
+    if new_optim:
+        same_kind = cfg.optim.name == original.optim.name
+        derived["optimizer"] = {
+            "state": state["optimizer"]["state"] if same_kind else {},
+            "param_groups": fresh["optimizer"]["param_groups"],
+        }
+    if new_sync:
+        derived["sync"] = fresh["sync"]
+    directory.mkdir(parents=True, exist_ok=True)
+    path = directory / f"start-{int(state['step']):07d}.pt"
+    torch.save(derived, path)
+    return path

@@ -1,0 +1,44 @@
+"""Build a task's model, data and loss from its config node through Hydra `_target_`s."""
+
+from dataclasses import dataclass
+from typing import Any
+
+import torch
+from hydra.errors import InstantiationException
+from hydra.utils import instantiate
+
+from scaledrill.errors import ConfigError
+
+
+@dataclass
+class Task:
+    name: str
+    model: torch.nn.Module
+    data: Any  # .train, optional .test and .evaluate(model)
+    loss: Any  # the Loss protocol of scaledrill.tasks
+
+
+def _build(node, key: str):
+    if node is None or "_target_" not in node:
+        raise ConfigError(key, "needs a _target_ naming a class or function to build")
+    try:
+        return instantiate(node, _convert_="all")
+    except InstantiationException as err:
+        cause = err.__cause__ or err
+        raise ConfigError(f"{key}._target_", f"could not import or build {node._target_!r}: {cause}") from None
+    except Exception as err:  # a user's constructor raised
+        raise ConfigError(f"{key}._target_", f"building {node._target_!r} failed: {err}") from None
+
+
+def build_task(node) -> Task:
+    """The task node has `model`, `data` and `loss` sub-nodes, each with a `_target_`."""
+    model = _build(node.get("model"), "task.model")
+    if not isinstance(model, torch.nn.Module):
+        raise ConfigError("task.model._target_", f"must build a torch.nn.Module, got {type(model).__name__}")
+    data = _build(node.get("data"), "task.data")
+    if not hasattr(data, "train"):
+        raise ConfigError("task.data._target_", "must build an object with a `train` dataset")
+    loss = _build(node.get("loss"), "task.loss")
+    if not callable(loss) or not hasattr(loss, "count"):
+        raise ConfigError("task.loss._target_", "must build a loss with __call__(output, batch) and count(batch)")
+    return Task(name=str(node.get("name", "custom")), model=model, data=data, loss=loss)

@@ -1,0 +1,305 @@
+"""The training loop: one optimizer step of DESIGN.md, repeated.
+
+    for each of k micro-batches: per-worker gradients   (grads.py)
+    sync: compress per worker -> reduce in-process -> all-reduce -> ÷ W   (sync/)
+    clip by global norm once, after averaging
+    optimizer update (per-layer trust ratio for LARS/LAMB)
+    telemetry
+
+The engine knows nothing of any one compressor, optimizer or detector: it calls
+their protocols. Every process runs this same loop on its own workers.
+"""
+
+import hashlib
+import time
+from pathlib import Path
+
+import torch
+from omegaconf import OmegaConf
+
+from scaledrill.config.validate import PATHS, validate_batchnorm
+from scaledrill.dist import Collective
+from scaledrill.errors import ConfigError, Interrupted
+from scaledrill.layout import Layout
+from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
+from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from scaledrill.sync import build_sync
+from scaledrill.sync.summary import sync_summary
+from scaledrill.tasks.base import Task, build_task
+from scaledrill.tasks.batches import cast_batch, check_finite
+from scaledrill.tasks.sampler import Sampler
+from scaledrill.telemetry.layers import layer_stats
+from scaledrill.telemetry.monitor import Monitor, StepRecord
+from scaledrill.train import checkpoint
+from scaledrill.train.grads import GradComputer, flatten_params, write_grads
+from scaledrill.train.signals import StopFlag
+
+DTYPES = {"float32": torch.float32, "float64": torch.float64}
+
+
+class Trainer:
+    """State of one process's training run; `step()` advances one optimizer step."""
+
+    def __init__(self, cfg, collective: Collective):
+        self.cfg, self.comm = cfg, collective
+        self.layout = Layout.from_config(cfg.layout)
+        self.workers = self.layout.worker_ids(collective.rank)
+        if cfg.train.dtype not in DTYPES:
+            raise ConfigError("train.dtype", f"must be one of {', '.join(DTYPES)}", cfg.train.dtype)
+        self.dtype = DTYPES[cfg.train.dtype]
+
+        torch.manual_seed(cfg.train.seed)  # same initial parameters in every process
+        self.task: Task = build_task(cfg.task)
+        self.model = self.task.model.to(self.dtype)
+        set_group_size(self.model, self.layout.micro_batch)
+        self.model.train()
+
+        self.sampler = Sampler(self.task.data.train.size, self.layout, cfg.train.seed, cfg.train.tail)
+        self.recipe = resolve_recipe(cfg, self.layout, self.task.data.train.size, cfg.train.tail)
+        self.optimizer = build_optimizer(list(self.model.named_parameters()), cfg.optim)
+        self.params = [p for p in self.model.parameters()]
+        self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
+        self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
+        self.path = self._choose_path(cfg.train.grads)
+        validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
+        self.batchnorm = cfg.train.get("batchnorm", "worker")
+        if self.batchnorm == "global":
+            set_global_statistics(self.model, collective)  # the group is the process's V·b samples, summed over P
+        # Averaged over processes every step (their tensors stay in place: restores and the vmap path copy into them).
+        named = dict(self.model.named_buffers())
+        self.running_stats = [named[n] for n in self.grads.running_stats] if collective.size > 1 else []
+        self.step_index = 0
+        # Read once: a config lookup costs tens of microseconds, several per step.
+        tel = cfg.telemetry
+        self.noise_every, self.layer_every = tel.get("noise_every", 25), tel.get("layer_every", 10)
+        self.clip_norm = cfg.optim.clip_norm
+
+    def _choose_path(self, asked: str) -> str:
+        if asked not in PATHS:
+            raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", asked)
+        if asked == "fused" and self.sync.per_worker:
+            raise ConfigError("train.grads", f"fused cannot serve sync={self.cfg.sync.name}, which needs each worker's gradient; use auto, vmap or loop")
+        if asked != "auto":
+            return asked
+        if self.sync.bitwise:
+            return "loop"  # each worker computed alone: rows that do not depend on V (sync/tree.py)
+        return "vmap" if self.sync.per_worker else "fused"
+
+    # -- one step ------------------------------------------------------------
+    def _micro_batches(self, step: int) -> list[dict]:
+        index = self.sampler.worker_batches(step, self.workers)  # [k, V, b]
+        micro = []
+        for m in range(self.layout.accum):
+            batch = self.task.data.train.take(index[m].reshape(-1))
+            check_finite(batch, index[m])
+            micro.append(cast_batch(batch, self.dtype))
+        return micro
+
+    def _global_count(self, micro: list[dict]) -> float:
+        """Units the step's loss is normalised by: samples, or valid tokens over all workers."""
+        if not getattr(self.task.loss, "per_token", False):
+            return float(self.layout.global_batch)
+        local = torch.stack([torch.as_tensor(self.task.loss.count(b), dtype=torch.float64) for b in micro]).sum()
+        self.comm.all_reduce(local)
+        return float(local)
+
+    def _share_scalars(self, values: list[float], buffers: list[torch.Tensor]):
+        """One all-reduce per step for everything small: the step's scalars and the
+        running statistics (averaged over processes, so they follow the mean over all
+        W workers). In float64, where the sum of P float32 values is exact, so the
+        average does not depend on the order the processes are summed in.
+
+        Started here, finished by the returned function: the caller syncs the
+        gradient meanwhile, so this small reduce costs no extra round trip."""
+        parts = [torch.tensor(values, dtype=torch.float64)] + [b.detach().reshape(-1).double() for b in buffers]
+        shared = torch.cat(parts)
+        pending = self.comm.all_reduce_start(shared)
+
+        def finish() -> torch.Tensor:
+            pending.wait()
+            offset = len(values)
+            with torch.no_grad():
+                for buf in buffers:
+                    buf.copy_((shared[offset : offset + buf.numel()] / self.comm.size).view_as(buf))
+                    offset += buf.numel()
+            return shared[: len(values)]
+
+        return finish
+
+    def _noise_due(self, step: int) -> bool:
+        every = self.noise_every
+        if self.layout.workers < 2 or not every or self.batchnorm == "global":
+            return False  # global statistics tie the workers together: no per-worker gradients to measure
+        return self.path != "fused" or step % every == 0  # per-worker paths measure it for free
+
+    def _layers_due(self, step: int) -> bool:
+        every = self.layer_every
+        return bool(every) and step % every == 0
+
+    def step(self) -> StepRecord:
+        step = self.step_index
+        micro = self._micro_batches(step)
+        scale = self.layout.workers / self._global_count(micro)
+        noise = self._noise_due(step)
+        path = "vmap" if noise and self.path == "fused" else self.path
+        result = self.grads.compute(micro, scale, path)
+        flag = getattr(self, "stop_flag", None)
+        local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
+        shared = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self.running_stats)
+        exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
+        average = self.sync.reduce(result.local, self.workers, step, donate=True)
+        scalars = shared()
+        W = self.layout.workers
+        small_sq = big_sq = None
+        if noise:
+            small_sq = float(scalars[1]) / W
+            big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum())
+
+        write_grads(average, self.params)
+        clip = self.clip_norm
+        grad_norm = clip_by_global_norm(self.params, clip)
+        lr = self.recipe.lr_at(step)
+        set_lr(self.optimizer, lr)
+        layers_due = self._layers_due(step)
+        before = [p.detach().clone() for p in self.params] if layers_due else None
+        self.optimizer.step()
+        layers = None
+        if layers_due:
+            updates = [p.detach() - b for p, b in zip(self.params, before)]
+            layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
+        trust = getattr(self.optimizer, "trust_ratios", None)
+        self.step_index += 1
+        return StepRecord(
+            step=step,
+            loss=float(scalars[0]) / W,
+            lr=lr,
+            grad_norm=float(grad_norm),
+            clipped_norm=min(float(grad_norm), clip) if clip else float(grad_norm),
+            small_sq=small_sq,
+            big_sq=big_sq,
+            layers=layers,
+            trust=dict(trust) if trust and layers_due else None,
+            sync=dict(self.sync.stats),
+            interrupt=bool(scalars[2] > 0),
+        )
+
+    def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
+        """Σ over all workers of the uncompressed gradients: the noise scale's big batch."""
+        exact = local.sum(0)
+        self.comm.all_reduce(exact)
+        return exact
+
+    # -- evaluation ----------------------------------------------------------
+    @torch.no_grad()
+    def evaluate(self, chunk: int = 1024) -> dict[str, float]:
+        data, loss = self.task.data, self.task.loss
+        self.model.eval()
+        try:
+            if hasattr(data, "evaluate"):
+                return {k: float(v) for k, v in data.evaluate(self.model).items()}
+            test = getattr(data, "test", None)
+            if test is None:
+                return {}
+            sums: dict[str, float] = {}
+            units = 0.0
+            for start in range(0, test.size, chunk):
+                index = torch.arange(start, min(start + chunk, test.size))
+                batch = cast_batch(test.take(index), self.dtype)
+                out = self.model(batch["input"])
+                units += float(loss.count(batch))
+                for k, v in loss.metrics(out, batch).items():
+                    sums[k] = sums.get(k, 0.0) + float(v)
+            return {k: v / units for k, v in sums.items()}
+        finally:
+            self.model.train()
+
+    def params_l2(self) -> float:
+        return float(flatten_params(self.params).double().norm())
+
+
+def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dict:
+    """Train for cfg.train.steps steps; returns the summary (meaningful on rank 0).
+
+    Checkpoints go to RUN_DIR/checkpoints every train.checkpoint_every steps and at
+    the end; `resume` continues from one. SIGINT/SIGTERM stop every process after
+    the current step, write a checkpoint and raise Interrupted. `on_step(trainer,
+    record)` may return True to end the run early (a goal was met).
+    """
+    started = time.perf_counter()
+    trainer = Trainer(cfg, collective)
+    layout = trainer.layout
+    monitor = Monitor(cfg, run_dir, collective.rank, layout.micro_batch * layout.accum, layout.global_batch, config_yaml(cfg))
+    if cfg.get("resume"):
+        state = checkpoint.load(cfg.resume)
+        checkpoint.restore(trainer, monitor, state)
+        monitor.last_checkpoint = state["path"]
+    ckpt_dir = Path(run_dir) / "checkpoints" if run_dir is not None else None
+    steps, every, ckpt_every = cfg.train.steps, cfg.train.eval_every, cfg.train.checkpoint_every
+    records: list[StepRecord] = []
+    evals: dict[int, dict] = {}
+    stopped = None
+    stopped_early = False
+    status = "failed"
+    first_step = trainer.step_index
+    try:
+        with StopFlag() as flag:
+            trainer.stop_flag = flag
+            for _ in range(trainer.step_index, steps):
+                record = trainer.step()
+                records.append(record)
+                stopped = monitor.observe(record)
+                last = trainer.step_index == steps or stopped is not None or record.interrupt
+                if collective.rank == 0 and (last or (every and trainer.step_index % every == 0)):
+                    evals[trainer.step_index] = trainer.evaluate()
+                if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
+                    saved = checkpoint.save(trainer, monitor, ckpt_dir)
+                    monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
+                if on_step is not None and on_step(trainer, record):
+                    stopped_early = True  # the caller's goal (e.g. a ladder's target) is met
+                if record.interrupt:
+                    status = "interrupted"
+                    monitor.close(status)
+                    raise Interrupted(
+                        f"stopped by a signal after step {trainer.step_index}; a checkpoint is in {ckpt_dir}; "
+                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)"
+                    )
+                if stopped is not None or stopped_early:
+                    break
+        status = "diverged" if stopped else "finished"
+    finally:
+        monitor.close(status)
+    done = trainer.step_index
+    summary = {
+        "workers": layout.workers,
+        "procs": layout.procs,
+        "micro_batch": layout.micro_batch,
+        "accum": layout.accum,
+        "global_batch": layout.global_batch,
+        "backend": layout.backend,
+        "grads": trainer.path,
+        "task": trainer.task.name,
+        "optimizer": cfg.optim.name,
+        "steps": done,
+        "resumed_from_step": first_step if cfg.get("resume") else None,
+        "samples_seen": done * layout.global_batch,
+        "dropped_samples": trainer.sampler.dropped_samples(done),
+        "tail": cfg.train.tail,
+        "final_loss": records[-1].loss if records else None,
+        "eval": evals[max(evals)] if evals else {},
+        "eval_history": {str(k): v for k, v in evals.items()},
+        "final_params_l2": trainer.params_l2(),
+        "params_digest": hashlib.sha256(b"".join(p.detach().contiguous().numpy().tobytes() for p in trainer.params)).hexdigest(),
+        "peak_lr": trainer.recipe.peak_lr,
+        "diverged": stopped is not None,
+        "stop_reason": stopped,
+        "stopped_early": stopped_early,
+        "last_checkpoint": monitor.last_checkpoint,
+        "wall_seconds": time.perf_counter() - started,
+    }
+    summary.update(monitor.summary())
+    summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
+    return summary
+
+
+def config_yaml(cfg) -> str:
+    return OmegaConf.to_yaml(cfg, resolve=True)

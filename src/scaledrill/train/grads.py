@@ -1,0 +1,139 @@
+"""Gradients of one process's workers for one optimizer step.
+
+Three paths, one result convention. Worker w's gradient g_w is in "worker-mean
+scale": the global-batch gradient is (1/W)·Σ_w g_w. Each micro-loss is the SUM
+of per-unit losses times W / N, with N the global count of units (samples, or
+valid tokens) in the whole step, so token-level losses are normalised by the
+global token count and never as a mean of micro-batch means.
+
+- fused: one forward/backward per micro-step over all V·b samples of the process;
+  returns [1, n] = Σ over this process's workers of g_w. Ghost batch
+  normalization (group = b) keeps BatchNorm statistics per worker.
+- vmap: per-worker gradients with torch.func; returns [V, n]. BatchNorm buffers
+  go in batched (one copy per worker) and come back as their mean.
+- loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
+
+Every path accumulates over the k micro-steps and returns flat vectors in
+`model.parameters()` order.
+"""
+
+from dataclasses import dataclass
+
+import torch
+from torch.func import functional_call, grad, vmap
+
+
+@dataclass
+class StepGrads:
+    local: torch.Tensor  # [1, n] (fused) or [V, n] (per-worker)
+    loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
+
+
+def _sum_loss(loss, model, batch, scale):
+    return loss(model(batch["input"]), batch) * scale
+
+
+class GradComputer:
+    """Computes StepGrads for the micro-batches of one process."""
+
+    def __init__(self, model: torch.nn.Module, loss, workers_per_proc: int):
+        self.model, self.loss, self.V = model, loss, workers_per_proc
+        self.names = [name for name, _ in model.named_parameters()]
+        self.params = [p for _, p in model.named_parameters()]
+        self.buffer_names = [name for name, _ in model.named_buffers()]
+        # Running statistics are averaged across processes; other buffers (constants,
+        # integer counters) are the same everywhere and are left alone.
+        self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
+        self.numel = sum(p.numel() for p in self.params)
+
+    # -- fused ---------------------------------------------------------------
+    def fused(self, micro: list[dict], scale: float) -> StepGrads:
+        out = torch.zeros(1, self.numel, dtype=self.params[0].dtype)
+        views = _views(out[0], self.params)
+        total = 0.0
+        for batch in micro:
+            value = _sum_loss(self.loss, self.model, batch, scale)
+            torch._foreach_add_(views, torch.autograd.grad(value, self.params))
+            total += float(value.detach())
+        return StepGrads(out, total)
+
+    # -- per worker ----------------------------------------------------------
+    def _split(self, batch: dict) -> dict:
+        """[V·b, ...] -> [V, b, ...] for every tensor of the batch."""
+        return {k: v.view(self.V, -1, *v.shape[1:]) for k, v in batch.items()}
+
+    def _batched_buffers(self) -> dict:
+        named = dict(self.model.named_buffers())
+        return {n: named[n].detach().unsqueeze(0).repeat(self.V, *[1] * named[n].dim()) for n in self.buffer_names}
+
+    def _store_buffer_mean(self, batched: dict) -> None:
+        named = dict(self.model.named_buffers())
+        with torch.no_grad():
+            for n, value in batched.items():
+                named[n].copy_(value.mean(0) if value.is_floating_point() else value[0])
+
+    def vmap(self, micro: list[dict], scale: float) -> StepGrads:
+        params = {n: p.detach() for n, p in zip(self.names, self.params)}
+        buffers = self._batched_buffers()
+        model, loss = self.model, self.loss
+
+        def worker_loss(p, b, batch):
+            out = functional_call(model, (p, b), (batch["input"],), strict=False)
+            value = loss(out, batch) * scale
+            return value, value
+
+        per_worker = vmap(grad(worker_loss, has_aux=True), in_dims=(None, 0, 0))
+        out = torch.zeros(self.V, self.numel, dtype=self.params[0].dtype)
+        total = 0.0
+        for batch in micro:
+            grads, values = per_worker(params, buffers, self._split(batch))
+            out += torch.cat([grads[n].reshape(self.V, -1) for n in self.names], dim=1)
+            total += float(values.sum())
+        self._store_buffer_mean(buffers)
+        return StepGrads(out, total)
+
+    def loop(self, micro: list[dict], scale: float) -> StepGrads:
+        named = dict(self.model.named_buffers())
+        start = {n: named[n].detach().clone() for n in self.buffer_names}
+        ends = {n: torch.zeros_like(t) for n, t in start.items()}
+        out = torch.zeros(self.V, self.numel, dtype=self.params[0].dtype)
+        total = 0.0
+        split = [self._split(batch) for batch in micro]
+        for v in range(self.V):
+            with torch.no_grad():
+                for n, t in start.items():
+                    named[n].copy_(t)
+            views = _views(out[v], self.params)
+            for batch in split:
+                one = {k: t[v] for k, t in batch.items()}
+                value = _sum_loss(self.loss, self.model, one, scale)
+                torch._foreach_add_(views, torch.autograd.grad(value, self.params))
+                total += float(value.detach())
+            for n in ends:
+                ends[n] += named[n].detach()
+        with torch.no_grad():
+            for n, t in ends.items():
+                named[n].copy_(t / self.V if t.is_floating_point() else t // self.V)
+        return StepGrads(out, total)
+
+    def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:
+        return getattr(self, path)(micro, scale)
+
+
+def _views(flat: torch.Tensor, params: list[torch.Tensor]) -> list[torch.Tensor]:
+    """Views of `flat` shaped like each parameter, in order."""
+    views, offset = [], 0
+    for p in params:
+        views.append(flat[offset : offset + p.numel()].view_as(p))
+        offset += p.numel()
+    return views
+
+
+def write_grads(flat: torch.Tensor, params: list[torch.Tensor]) -> None:
+    """Give every parameter its slice of the averaged flat gradient as `.grad`."""
+    for p, view in zip(params, _views(flat, params)):
+        p.grad = view
+
+
+def flatten_params(params: list[torch.Tensor]) -> torch.Tensor:
+    return torch.cat([p.detach().reshape(-1) for p in params])
