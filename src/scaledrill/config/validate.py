@@ -6,6 +6,7 @@ this module only runs them in order and checks the keys of `train`.
 
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
+from scaledrill.sync.path import PATHS, grad_path, path_cause
 
 
 def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
@@ -16,7 +17,6 @@ def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
         raise ConfigError(f"train.{key}", rule, value)
 
 
-PATHS = ("auto", "fused", "vmap", "loop")  # train.grads: how per-worker gradients are computed
 BATCHNORM = ("worker", "global")  # whose samples BatchNorm's statistics come from
 
 
@@ -30,25 +30,11 @@ def batchnorm_path_error(cause: str) -> ConfigError:
     )
 
 
-def _per_worker_cause(cfg) -> str | None:
-    """The setting that puts the run on a per-worker gradient path (the engine's choice, from the config alone)."""
-    from scaledrill.sync.compress import build
-
-    sync = cfg.sync
-    if sync.get("bitwise", False):
-        return "sync.bitwise=true"
-    if sync.get("error_feedback", False) or build(sync).per_worker:
-        return f"sync={sync.name}" + (" with error_feedback" if sync.get("error_feedback", False) else "")
-    if cfg.train.grads in ("vmap", "loop"):
-        return f"train.grads={cfg.train.grads}"
-    return None
-
-
 def validate_batchnorm(cfg) -> None:
     mode = cfg.train.get("batchnorm", "worker")
     if mode not in BATCHNORM:
         raise ConfigError("train.batchnorm", f"must be {' or '.join(BATCHNORM)}", mode)
-    cause = _per_worker_cause(cfg) if mode == "global" else None
+    cause = path_cause(cfg.train.grads, cfg.sync) if mode == "global" else None
     if cause is not None:
         raise batchnorm_path_error(cause)
 
@@ -79,5 +65,6 @@ def validate_run(cfg) -> Layout:
     optim.validate(cfg)
     sync.validate(cfg.sync)
     validate_batchnorm(cfg)  # after sync: which gradient path the sync needs
+    grad_path(cfg.train.grads, cfg.sync)  # fused cannot serve a sync that needs per-worker rows
     telemetry.validate(cfg.telemetry)
     return layout

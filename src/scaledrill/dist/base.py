@@ -23,9 +23,6 @@ class Collective(Protocol):
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         """Stack every process's `tensor` (same shape everywhere) along a new dim 0, in rank order."""
 
-    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
-        """Overwrite `tensor` with the copy held by rank `src`."""
-
     def barrier(self) -> None: ...
 
     def close(self) -> None: ...
@@ -59,9 +56,6 @@ class LocalCollective:
 
     def all_gather(self, tensor: torch.Tensor) -> torch.Tensor:
         return tensor.unsqueeze(0).clone()
-
-    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
-        pass
 
     def barrier(self) -> None:
         pass

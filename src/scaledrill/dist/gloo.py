@@ -33,9 +33,6 @@ class GlooCollective:
         dist.all_gather(list(out.unbind(0)), tensor.contiguous())
         return out
 
-    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
-        dist.broadcast(tensor, src)
-
     def barrier(self) -> None:
         dist.barrier()
 

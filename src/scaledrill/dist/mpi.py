@@ -59,12 +59,6 @@ class MpiCollective:
         self.comm.Allgather(self._view(src), self._view(out))
         return out.to(tensor.dtype)
 
-    def broadcast(self, tensor: torch.Tensor, src: int = 0) -> None:
-        buf = tensor.float() if tensor.dtype == torch.bfloat16 else tensor.contiguous()
-        self.comm.Bcast(self._view(buf), root=src)
-        if buf.data_ptr() != tensor.data_ptr():
-            tensor.copy_(buf)
-
     def barrier(self) -> None:
         self.comm.Barrier()
 

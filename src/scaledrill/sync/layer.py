@@ -24,6 +24,7 @@ from scaledrill.errors import ConfigError
 from scaledrill.sync.buckets import bucketed_sum
 from scaledrill.sync.compress import NAMES, Round, build, dense_bytes
 from scaledrill.sync.feedback import ErrorFeedback
+from scaledrill.sync.path import per_worker_cause
 from scaledrill.sync.tree import tree_sum
 
 DEFAULTS = {
@@ -76,9 +77,10 @@ def validate(cfg) -> None:
 
 
 class SyncLayer:
-    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype, bitwise=False):
+    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype, bitwise=False, per_worker=False):
         self.compressor, self.layout, self.collective = compressor, layout, collective
         self.bitwise = bitwise
+        self.per_worker = per_worker  # wants one row per hosted worker (path.py decides, from the config)
         self.seed, self.bucket_mib, self.fidelity = seed, bucket_mib, fidelity
         self.n = sum(math.prod(s) for s in shapes)
         self.state = compressor.init(list(shapes), layout.per_proc, seed, dtype)
@@ -88,10 +90,6 @@ class SyncLayer:
     @property
     def fidelity_reads_local(self) -> bool:
         return self.fidelity and not self.compressor.lossless  # 3. reads `local` after the update
-
-    @property
-    def per_worker(self) -> bool:
-        return self.bitwise or self.compressor.per_worker  # the tree needs each worker's row
 
     def _sum(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         if self.bitwise:
@@ -172,4 +170,5 @@ def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = 
     compressor = build(cfg)
     if get("error_feedback"):
         compressor = ErrorFeedback(compressor)
-    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype, get("bitwise"))
+    per_worker = per_worker_cause(cfg) is not None
+    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype, get("bitwise"), per_worker)

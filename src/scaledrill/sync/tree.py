@@ -23,8 +23,8 @@ changes nothing.
 The per-worker rows must themselves not depend on the layout: the fused path's one
 backward over V·b samples sums in an order that does, and vmap's batched kernels
 may too (a batched convolution of 8 workers differs from a single one). So in
-bitwise mode the layer asks for per-worker rows (`per_worker`) and the engine picks
-the loop path, which computes each worker alone. Results are then bitwise equal
+bitwise mode the sync takes one row per worker and `train.grads=auto` resolves to
+the loop path (path.py), which computes each worker alone. Results are then bitwise equal
 across layouts for the same number of intra-op threads per process (a threaded
 reduction may split sums differently).
 
@@ -60,7 +60,3 @@ def tree_sum(rows: torch.Tensor, collective, bucket_mib: float) -> torch.Tensor:
         gathered = collective.all_gather(local[piece])  # 2. [P, m]
         out[piece] = pairwise_sum(gathered)  # 3.
     return out
-
-
-def is_power_of_two(n: int) -> bool:
-    return n >= 1 and n & (n - 1) == 0

@@ -13,8 +13,6 @@ from collections.abc import Sequence
 
 import torch
 
-STATS = ("weight_norm", "grad_norm", "update_norm", "update_ratio")
-
 
 def layer_stats(
     names: Sequence[str],

@@ -1,4 +1,4 @@
-"""The training loop: one optimizer step of DESIGN.md, repeated.
+"""The training loop: one optimizer step (docs/design.md, "One optimizer step"), repeated.
 
     for each of k micro-batches: per-worker gradients   (grads.py)
     sync: compress per worker -> reduce in-process -> all-reduce -> ÷ W   (sync/)
@@ -17,13 +17,14 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
-from scaledrill.config.validate import PATHS, validate_batchnorm
+from scaledrill.config.validate import validate_batchnorm
 from scaledrill.dist import Collective
 from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
 from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
 from scaledrill.sync import build_sync
+from scaledrill.sync.path import grad_path
 from scaledrill.sync.summary import sync_summary
 from scaledrill.tasks.base import Task, build_task
 from scaledrill.tasks.batches import cast_batch, check_finite
@@ -60,7 +61,7 @@ class Trainer:
         self.params = [p for p in self.model.parameters()]
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
-        self.path = self._choose_path(cfg.train.grads)
+        self.path = grad_path(cfg.train.grads, cfg.sync)
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.get("batchnorm", "worker")
         if self.batchnorm == "global":
@@ -73,17 +74,6 @@ class Trainer:
         tel = cfg.telemetry
         self.noise_every, self.layer_every = tel.get("noise_every", 25), tel.get("layer_every", 10)
         self.clip_norm = cfg.optim.clip_norm
-
-    def _choose_path(self, asked: str) -> str:
-        if asked not in PATHS:
-            raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", asked)
-        if asked == "fused" and self.sync.per_worker:
-            raise ConfigError("train.grads", f"fused cannot serve sync={self.cfg.sync.name}, which needs each worker's gradient; use auto, vmap or loop")
-        if asked != "auto":
-            return asked
-        if self.sync.bitwise:
-            return "loop"  # each worker computed alone: rows that do not depend on V (sync/tree.py)
-        return "vmap" if self.sync.per_worker else "fused"
 
     # -- one step ------------------------------------------------------------
     def _micro_batches(self, step: int) -> list[dict]:
