@@ -275,3 +275,12 @@ def test_cli_writes_only_the_report(tmp_path):
                          capture_output=True, text=True)
     assert bad.returncode == 2 and "path: must be an existing directory" in bad.stderr
     assert not (tmp_path / "nowhere").exists()
+
+
+def test_replay_report_names_a_malformed_cluster_log_instead_of_drawing_it(tmp_path):
+    directory = make_replay(tmp_path / "replay")
+    (directory / "cluster_log.csv").write_text("step,loss\n1,2.0\n3,1.5\n2,1.4\n")  # steps must increase
+    text, page = render(directory, tmp_path)
+    alts = [i["alt"] for i in pngs(page.sections["replay"])]
+    assert alts and all("cluster log" not in a for a in alts)
+    assert "Not recorded here: cluster log" in text and "line 4" in text

@@ -23,6 +23,7 @@ from scaledrill.check.paths import variant
 from scaledrill.check.reference import build_model
 from scaledrill.config.validate import validate_batchnorm
 from scaledrill.errors import ConfigError
+from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import GhostBatchNorm
 
 KEY = "check.batchnorm"
@@ -35,7 +36,7 @@ def has_batchnorm(cfg) -> bool:
 def path_batchnorm(cfg, settings, model_has_batchnorm: bool) -> str:
     """The train.batchnorm every path of this check trains with; raises ConfigError for rules 1 and 2."""
     L = cfg.layout
-    B, per_step = L.workers * L.micro_batch * L.accum, L.workers * L.micro_batch
+    B, per_step = Layout.from_config(L).global_batch, L.workers * L.micro_batch
     if not model_has_batchnorm or B == L.micro_batch:  # no BatchNorm, or one group is the whole batch
         return "worker"
     if settings.batchnorm == "worker" and cfg.train.get("batchnorm", "worker") == "global":

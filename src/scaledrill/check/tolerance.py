@@ -20,6 +20,8 @@ errors add up step after step, so their tolerance grows linearly with t.
 import math
 from dataclasses import dataclass, field
 
+from scaledrill.layout import Layout
+
 C = 32.0
 UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}
 RULE = "gradient: tol = C·u·√B·max|g_ref| per layer; parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"
@@ -71,8 +73,7 @@ class Tolerance:
 
     @classmethod
     def for_run(cls, cfg, scale: float) -> "Tolerance":
-        L = cfg.layout
-        return cls(UNIT_ROUNDOFF[cfg.train.dtype], L.workers * L.micro_batch * L.accum, scale)
+        return cls(UNIT_ROUNDOFF[cfg.train.dtype], Layout.from_config(cfg.layout).global_batch, scale)
 
     def __call__(self, magnitude: float, steps: int = 1) -> float:
         return C * self.unit * math.sqrt(self.batch) * steps * magnitude * self.scale

@@ -30,6 +30,7 @@ from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.io import write_json
 from scaledrill.ladder.fit import fit_tradeoff, regime
 from scaledrill.ladder.rungs import TRAIN_LOSS, Plan, Rung, Watch, rung_config
+from scaledrill.layout import Layout
 from scaledrill.optim.scaling import scaled_lr
 from scaledrill.train.run import prepare_run_dir, run_verb
 
@@ -38,7 +39,7 @@ def rung_lr(cfg) -> float:
     """The peak rate the scaling rule gives the rung's global batch."""
     s, L = cfg.scaling, cfg.layout
     base = None if s.rule == "none" else s.base_batch
-    return scaled_lr(s.rule, s.base_lr, base, L.workers * L.micro_batch * L.accum, s.get("exponent", 1.0))
+    return scaled_lr(s.rule, s.base_lr, base, Layout.from_config(L).global_batch, s.get("exponent", 1.0))
 
 
 def _in_process(cfg, plan: Plan, run_dir: Path, tick) -> tuple[dict, Watch]:

@@ -20,6 +20,7 @@ from omegaconf import OmegaConf
 
 from scaledrill.config.validate import validate_run
 from scaledrill.errors import ConfigError
+from scaledrill.layout import Layout
 from scaledrill.train.run import PROCS_PER_CORE
 
 MODES = ("workers", "accum")
@@ -92,8 +93,7 @@ def batches_of(cfg) -> list[int]:
             raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
         return sorted(batches)
     count = _whole(node, "rungs")
-    L = cfg.layout
-    return [L.workers * L.micro_batch * L.accum * 2**i for i in range(count)]
+    return [Layout.from_config(cfg.layout).global_batch * 2**i for i in range(count)]
 
 
 def layout_of(cfg, mode: str, batch: int) -> tuple[int, int]:

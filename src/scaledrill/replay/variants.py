@@ -31,6 +31,7 @@ from omegaconf import OmegaConf
 
 from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides
 from scaledrill.errors import CheckpointError, ConfigError
+from scaledrill.layout import Layout
 from scaledrill.telemetry.store import read_events
 from scaledrill.train import checkpoint
 
@@ -94,13 +95,15 @@ def render_path(path: Path) -> str:
 
 
 def check_layout(name: str, cfg, state: dict) -> None:
-    for key in ("workers", "micro_batch", "accum"):
-        if cfg.layout[key] != state["layout"][key]:
-            raise ConfigError(
-                f"replay.variants.{name}",
-                f"changes layout.{key} to {cfg.layout[key]}, but the checkpoint was made with {state['layout'][key]}; "
-                "a replay may change layout.procs and layout.backend only",
-            )
+    """A variant keeps the checkpoint's workers, micro-batch and accumulation (the resume rule of train/checkpoint.py)."""
+    change = checkpoint.layout_change(state, Layout.from_config(cfg.layout))
+    if change is not None:
+        key, saved, now = change
+        raise ConfigError(
+            f"replay.variants.{name}",
+            f"changes layout.{key} to {now}, but the checkpoint was made with {saved}; "
+            "a replay may change layout.procs and layout.backend only",
+        )
 
 
 def start_checkpoint(cfg, original, state: dict, directory: Path) -> Path | None:

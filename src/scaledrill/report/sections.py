@@ -7,12 +7,13 @@ renders what is there and says what is absent, so a half-finished or crashed
 directory still gives a useful page.
 """
 
-import csv
 from pathlib import Path
 
 import numpy as np
 
+from scaledrill.errors import DataError
 from scaledrill.forecast import CAUTION
+from scaledrill.replay.cluster_log import read_cluster_log
 from scaledrill.report import figures as fg
 from scaledrill.report.html import Section, absent, figure, heading, key_values, paragraph, table, verdict
 from scaledrill.report.run_section import load_json, run_section
@@ -54,12 +55,15 @@ def check_section(directory: Path, source: str) -> Section:
     return section
 
 
-def _cluster_log(path: Path) -> dict:
-    """Columns of a cluster log CSV (step, loss, optional grad_norm, lr) as float arrays."""
-    with open(path, newline="", encoding="utf-8") as f:
-        rows = list(csv.DictReader(f))
-    columns = {name: np.array([float(r[name] or "nan") for r in rows]) for name in (rows[0] if rows else {})}
-    return columns if "step" in columns else {}
+def _cluster_log(path: Path) -> tuple[dict, str | None]:
+    """(label -> column against step, problem): the log through the replay's own checked reader."""
+    try:
+        log = read_cluster_log(path)
+    except DataError as err:
+        return {}, f"cluster log ({err})"
+    steps = log.steps.astype(np.float64)
+    columns = {"loss": log.loss, "grad_norm": log.grad_norm, "lr": log.lr}
+    return {name: (steps, values) for name, values in columns.items() if values is not None}, None
 
 
 def _original_run(checkpoint: Path) -> Path | None:
@@ -94,11 +98,11 @@ def replay_section(directory: Path, source: str) -> Section:
         else:
             missing.append(f"run store of variant {v.get('name')}")
     log = directory / str(doc.get("cluster_log") or "cluster_log.csv")
-    columns = _cluster_log(log) if log.is_file() else {}
+    columns, problem = _cluster_log(log) if log.is_file() else ({}, "cluster log")
     if columns:
-        curves["cluster log"] = {name: (columns["step"], values) for name, values in columns.items()}
+        curves["cluster log"] = columns
     else:
-        missing.append("cluster log")
+        missing.append(problem)
     marks = [(doc["from_step"], f"resumed at {doc['from_step']}")] if doc.get("from_step") is not None else []
     if doc.get("departure_step") is not None:
         marks.append((doc["departure_step"], f"departs at {doc['departure_step']}"))

@@ -108,18 +108,32 @@ def _restore_optimizer(optimizer, state: dict) -> None:
         group.update(settings)
 
 
+# What a checkpoint fixes: the workers, their micro-batch and the accumulation decide
+# which samples each step sees and how optimizer and sync state are laid out per
+# worker. How the workers are hosted (layout.procs, layout.backend) may change.
+FIXED = ("workers", "micro_batch", "accum")
+
+
+def layout_change(state: dict, layout) -> tuple[str, int, int] | None:
+    """The first of FIXED where `layout` (a Layout) differs from the checkpoint's: (key, saved, now)."""
+    for key in FIXED:
+        if state["layout"][key] != getattr(layout, key):
+            return key, state["layout"][key], getattr(layout, key)
+    return None
+
+
 def restore(trainer, monitor, state: dict) -> None:
     """Put a loaded checkpoint into a freshly built trainer (and monitor)."""
     where = state.get("path", "checkpoint")
     if state["signature"] != _signature(trainer.model):
         raise CheckpointError(f"resume: {where} holds another model (parameter names or shapes differ from task.model)")
-    layout = trainer.layout
-    for key in ("workers", "micro_batch", "accum"):
-        if state["layout"][key] != getattr(layout, key):
-            raise CheckpointError(
-                f"resume: {where} was made with layout.{key}={state['layout'][key]}, this run has "
-                f"layout.{key}={getattr(layout, key)}; only layout.procs and layout.backend may change"
-            )
+    change = layout_change(state, trainer.layout)
+    if change is not None:
+        key, saved, now = change
+        raise CheckpointError(
+            f"resume: {where} was made with layout.{key}={saved}, this run has "
+            f"layout.{key}={now}; only layout.procs and layout.backend may change"
+        )
     trainer.model.load_state_dict(state["model"])
     _restore_optimizer(trainer.optimizer, state)
     rows = slice(trainer.workers.start, trainer.workers.stop)

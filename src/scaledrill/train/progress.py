@@ -5,12 +5,14 @@ import time
 from rich.console import Console
 from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
+from scaledrill.layout import Layout
+
 
 class StepProgress:
     def __init__(self, cfg, enabled: bool):
         self.enabled = enabled
         self.total = cfg.train.steps
-        self.batch = cfg.layout.workers * cfg.layout.micro_batch * cfg.layout.accum
+        self.batch = Layout.from_config(cfg.layout).global_batch
         self._bar = None
 
     def __enter__(self):
