@@ -59,7 +59,7 @@ def test_rabenseifner_matches_thakur():
 
 def test_two_level_is_intra_ring_plus_inter_ring_on_a_shard():
     intra, inter = (2e-6, 1e-11), (1e-5, 1e-10)  # 2 µs, 100 GB/s inside; 10 µs, 10 GB/s across
-    # REFERENCES.md "Collective cost": ring inside the node on n, ring across nodes on n/g; p = 16, g = 4, m = 4
+    # docs/references.md "Cost of a collective": ring inside the node on n, ring across nodes on n/g; p = 16, g = 4, m = 4
     # inside: 2·3·2e-6 + 2·(3/4)·1e8·1e-11 = 1.2e-5 + 1.5e-3 = 1.512e-3
     # across: 2·3·1e-5 + 2·(3/4)·2.5e7·1e-10 = 6e-5 + 3.75e-3 = 3.81e-3;   total 5.322e-3
     t = allreduce_seconds(N, 16, algorithm="two_level", ranks_per_node=4, intra=intra, inter=inter)

@@ -156,7 +156,7 @@ class Diagnosis:
                 f"{name} differs from the true batch for a reason none of the checks names",
                 f"layers off after step 1: {', '.join(layers) or 'none'}; trajectory first off at step "
                 f"{first.trajectory.first_bad_step if first.trajectory else '-'}{detail}",
-                "compare this path's step function with the protocol in scaledrill.check.threads and the pitfalls in REFERENCES.md"))
+                "compare this path's step function with the protocol in scaledrill.check.threads and the pitfalls in the project's docs/references.md"))
 
     def run(self) -> list[Finding]:
         from scaledrill.check.diagnose_step import step_checks

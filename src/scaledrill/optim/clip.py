@@ -1,7 +1,7 @@
 """Clip by global norm, once per optimizer step, after the gradients are averaged.
 
 Clipping each micro-batch or each worker's gradient is not the clip of the
-averaged gradient (REFERENCES.md, pitfalls), so the engine calls this exactly once
+averaged gradient (docs/references.md, "Pitfalls"), so the engine calls this exactly once
 per step on the averaged `.grad`s. With norm ‖g‖ over all parameters together,
 every gradient is scaled by min(1, max_norm / ‖g‖) (Pascanu et al. 2013).
 

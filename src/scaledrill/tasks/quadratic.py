@@ -67,7 +67,7 @@ def expected_loss(h, c, theta0, lr: float, batch: int, steps):
     """E[L_t] for plain SGD after `steps` steps (scalar or array of steps).
 
     E[θ²ₜ₊₁] = r·E[θ²ₜ] + α²c/B with r = (1 − αh)², so
-    E[θ²ₜ] = rᵗ·θ₀² + (1 − rᵗ)·αc / (B·h·(2 − αh)) (REFERENCES.md, Zhang et al. 2019),
+    E[θ²ₜ] = rᵗ·θ₀² + (1 − rᵗ)·αc / (B·h·(2 − αh)) (Zhang et al. 2019; docs/references.md, "Noisy quadratic model"),
     and E[Lₜ] = ½ Σ h·E[θ²ₜ]. At r = 1 the variance grows by α²c/B a step.
     """
     h, r, start, added = _moments(h, c, theta0, lr, batch)

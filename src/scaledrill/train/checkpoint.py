@@ -22,6 +22,12 @@ from scaledrill.errors import CheckpointError
 
 FORMAT = "scaledrill-checkpoint-1"
 
+# What a checkpoint fixes: the workers, their micro-batch and the accumulation decide
+# which samples each step sees and how optimizer and sync state are laid out per
+# worker. How the workers are hosted (layout.procs, layout.backend) may change
+# (docs/design.md, "Checkpoints, faults and stopping").
+FIXED = ("workers", "micro_batch", "accum")
+
 
 def _signature(model: torch.nn.Module) -> list[list]:
     return [[name, list(t.shape)] for name, t in model.state_dict().items()]
@@ -37,11 +43,10 @@ def collect(trainer, monitor) -> dict:
     sync_state = {}
     for key, value in trainer.sync.state_dict().items():
         sync_state[key] = _gather_rows(trainer, value) if key.startswith("worker.") else value
-    layout = trainer.layout
     return {
         "format": FORMAT,
         "step": trainer.step_index,
-        "layout": {"workers": layout.workers, "micro_batch": layout.micro_batch, "accum": layout.accum},
+        "layout": {key: getattr(trainer.layout, key) for key in FIXED},
         "signature": _signature(trainer.model),
         "model": trainer.model.state_dict(),
         "optimizer": trainer.optimizer.state_dict(),
@@ -106,12 +111,6 @@ def _restore_optimizer(optimizer, state: dict) -> None:
     optimizer.load_state_dict(state["optimizer"])
     for group, settings in zip(optimizer.param_groups, fresh):
         group.update(settings)
-
-
-# What a checkpoint fixes: the workers, their micro-batch and the accumulation decide
-# which samples each step sees and how optimizer and sync state are laid out per
-# worker. How the workers are hosted (layout.procs, layout.backend) may change.
-FIXED = ("workers", "micro_batch", "accum")
 
 
 def layout_change(state: dict, layout) -> tuple[str, int, int] | None:
