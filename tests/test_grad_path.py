@@ -44,12 +44,15 @@ def test_an_explicit_path_is_kept_and_fused_is_refused_where_rows_are_needed():
     assert err.value.key == "train.grads"
 
 
-@pytest.mark.parametrize("overrides, path", [
-    ((), "fused"),
-    (("sync=topk",), "vmap"),
-    (("sync.error_feedback=true",), "vmap"),
-    (("sync.bitwise=true",), "loop"),
-])
+@pytest.mark.parametrize(
+    "overrides, path",
+    [
+        ((), "fused"),
+        (("sync=topk",), "vmap"),
+        (("sync.error_feedback=true",), "vmap"),
+        (("sync.bitwise=true",), "loop"),
+    ],
+)
 def test_engine_and_sync_layer_follow_the_same_rule(overrides, path):
     trainer = Trainer(make_config("task=quadratic", "layout.workers=2", *overrides), LocalCollective())
     assert trainer.path == path

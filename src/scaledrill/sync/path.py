@@ -45,7 +45,9 @@ def grad_path(asked, sync) -> str:
         raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", asked)
     cause = per_worker_cause(sync)
     if asked == "fused" and cause is not None:
-        raise ConfigError("train.grads", f"fused cannot serve {cause}, which needs each worker's gradient; use auto, vmap or loop", asked)
+        raise ConfigError(
+            "train.grads", f"fused cannot serve {cause}, which needs each worker's gradient; use auto, vmap or loop", asked
+        )
     if asked != "auto":
         return asked
     if cause is None:
