@@ -31,7 +31,7 @@ def config(forecast: dict, batches=(256, 1024)) -> OmegaConf:
 def ladder(tmp_path: Path, rungs=RUNGS) -> Path:
     directory = tmp_path / "ladder"
     directory.mkdir(exist_ok=True)
-    (directory / "ladder.json").write_text(json.dumps({"mode": "workers", "rungs": rungs, "fit": None}))
+    (directory / "ladder.json").write_text(json.dumps({"grow": "workers", "rungs": rungs, "fit": None}))
     return directory
 
 

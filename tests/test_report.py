@@ -131,7 +131,7 @@ def make_ladder(directory: Path) -> Path:
     search = {str(r["global_batch"]): {"best_lr": r["lr"], "window": [r["lr"] / 2, r["lr"] * 2], "samples_spent": 9000,
               "trials": [{"lr": r["lr"] * f, "reached": f < 4, "diverged": f >= 4, "pruned": False, "steps": 50}
                          for f in (0.25, 1, 4)]} for r in rungs}  # fmt: skip
-    doc = {"mode": "workers", "rungs": rungs, "search": search,
+    doc = {"grow": "workers", "rungs": rungs, "search": search,
            "fit": {"s_min": s_min, "e_min": s_min * b_noise, "b_noise": b_noise, "b_crit": b_noise}}  # fmt: skip
     (directory / "ladder.json").write_text(json.dumps(doc))
     return directory

@@ -23,6 +23,7 @@ from hydra import compose, initialize_config_dir
 from hydra.core.global_hydra import GlobalHydra
 from omegaconf import OmegaConf
 
+import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
 from scaledrill.errors import CheckpointError
 
 CONFIG_DIR = Path(__file__).resolve().parents[1] / "conf"

@@ -144,7 +144,7 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
             trial.report(value, step)
             return trial.should_prune()
 
-        watch = Watch(plan.target, plan.check_every, explode=settings.explode, report=report)
+        watch = Watch(plan.goal, plan.check_every, explode=settings.explode, report=report)
         summary = run_training(rung_config(cfg, rung, lr=rate, warmup=warmup, local=True), LocalCollective(), on_step=watch)
         record.steps, record.metric = summary["steps"], watch.metric
         record.reached = watch.reached_step is not None
@@ -156,7 +156,7 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(
-        direction="minimize" if plan.target.mode == "below" else "maximize",
+        direction="minimize" if plan.goal.reached_when == "below" else "maximize",
         sampler=optuna.samplers.TPESampler(seed=settings.seed),
         pruner=settings.pruner_for(rung.steps),
     )

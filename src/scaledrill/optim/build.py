@@ -43,9 +43,9 @@ def build_optimizer(named_params: list[tuple[str, Parameter]], node) -> torch.op
                                 decoupled_weight_decay=decay_of(node) == "decoupled")
     if name == "lars":
         return LARS(groups, lr=lr, momentum=node.get("momentum", 0.9), trust_coefficient=node.trust_coefficient,
-                    trust_clip=node.get("trust_clip"), denominator=node.get("denominator", "grad"))
+                    trust_cap=node.get("trust_cap"), denominator=node.get("denominator", "grad"))
     return LAMB(groups, lr=lr, betas=tuple(node.betas), eps=node.eps, decay=decay_of(node),
-                bias_correction=bool(node.get("bias_correction", True)), trust_clip=node.get("trust_clip"))
+                bias_correction=bool(node.get("bias_correction", True)), trust_cap=node.get("trust_cap"))
 
 
 def set_lr(optimizer: torch.optim.Optimizer, lr: float) -> None:
@@ -78,7 +78,7 @@ def validate_optim(node) -> None:
             raise ConfigError("optim.betas", "must be two numbers in [0, 1)", betas)
         _check(node, "eps", lambda x: x >= 0, "must be a number >= 0")
     if name in ("lars", "lamb"):
-        _check(node, "trust_clip", lambda x: x > 0, "must be a positive number, or null for no cap", default=None)
+        _check(node, "trust_cap", lambda x: x > 0, "must be a positive number, or null for no cap", default=None)
     if name == "lars":
         _check(node, "trust_coefficient", lambda x: x > 0, "must be a positive number")
         if node.get("denominator", "grad") not in ("grad", "update"):

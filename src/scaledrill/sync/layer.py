@@ -29,15 +29,15 @@ from scaledrill.sync.tree import tree_sum
 DEFAULTS = {
     "name": "exact",
     "error_feedback": False,
-    "bucket_mib": 25.0,
+    "bucket_kib": 16384,
     "fidelity": True,
     "fraction": 0.01,
     "count": None,
     "unbiased": True,
     "levels": 16,
     "rank": 1,
-    "start_step": 0,
-    "min_compression": 1.0,
+    "exact_until": 0,
+    "min_saving": 1.0,
     "bitwise": False,
 }
 
@@ -62,13 +62,13 @@ def validate(cfg) -> None:
         ("fidelity", isinstance(get("fidelity"), bool), "must be true or false"),
         ("bitwise", isinstance(get("bitwise"), bool), "must be true or false"),
         ("unbiased", isinstance(get("unbiased"), bool), "must be true or false"),
-        ("bucket_mib", _number(get("bucket_mib")) and get("bucket_mib") > 0, "must be a number > 0"),
+        ("bucket_kib", _number(get("bucket_kib")) and get("bucket_kib") > 0, "must be a number > 0"),
         ("fraction", _number(get("fraction")) and 0 < get("fraction") <= 1, "must be in (0, 1]"),
         ("count", get("count") is None or (_whole(get("count")) and get("count") >= 1), "must be null or a whole number >= 1"),
         ("levels", _whole(get("levels")) and get("levels") >= 1, "must be a whole number >= 1"),
         ("rank", _whole(get("rank")) and get("rank") >= 1, "must be a whole number >= 1"),
-        ("start_step", _whole(get("start_step")) and get("start_step") >= 0, "must be a whole number >= 0"),
-        ("min_compression", _number(get("min_compression")) and get("min_compression") > 0, "must be a number > 0"),
+        ("exact_until", _whole(get("exact_until")) and get("exact_until") >= 0, "must be a whole number >= 0"),
+        ("min_saving", _number(get("min_saving")) and get("min_saving") > 0, "must be a number > 0"),
     ]
     for key, ok, rule in rules:
         if not ok:
@@ -76,10 +76,10 @@ def validate(cfg) -> None:
 
 
 class SyncLayer:
-    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype, bitwise=False):
+    def __init__(self, compressor, layout, shapes, collective, seed, bucket_kib, fidelity, dtype, bitwise=False):
         self.compressor, self.layout, self.collective = compressor, layout, collective
         self.bitwise = bitwise
-        self.seed, self.bucket_mib, self.fidelity = seed, bucket_mib, fidelity
+        self.seed, self.bucket_kib, self.fidelity = seed, bucket_kib, fidelity
         self.n = sum(math.prod(s) for s in shapes)
         self.state = compressor.init(list(shapes), layout.per_proc, seed, dtype)
         self.calls = 0
@@ -95,8 +95,8 @@ class SyncLayer:
 
     def _sum(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         if self.bitwise:
-            return tree_sum(rows, self.collective, self.bucket_mib)
-        return bucketed_sum(rows, self.collective, self.bucket_mib, in_place)
+            return tree_sum(rows, self.collective, self.bucket_kib)
+        return bucketed_sum(rows, self.collective, self.bucket_kib, in_place)
 
     def _mean(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         return self._sum(rows, in_place).div_(self.layout.workers)
@@ -172,4 +172,4 @@ def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = 
     compressor = build(cfg)
     if get("error_feedback"):
         compressor = ErrorFeedback(compressor)
-    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype, get("bitwise"))
+    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_kib")), get("fidelity"), dtype, get("bitwise"))

@@ -102,7 +102,7 @@ def build(cfg) -> Compressor:
         "sign": lambda c: ScaledSign(),
         "qsgd": lambda c: QSGD(levels=c.get("levels", 16)),
         "powersgd": lambda c: PowerSGD(
-            rank=c.get("rank", 1), start_step=c.get("start_step", 0), min_compression=c.get("min_compression", 1.0)
+            rank=c.get("rank", 1), exact_until=c.get("exact_until", 0), min_saving=c.get("min_saving", 1.0)
         ),
     }
     return makers[cfg.get("name", "exact")](cfg)
