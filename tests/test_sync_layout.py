@@ -35,7 +35,7 @@ def grads(step: int, workers: range) -> torch.Tensor:
 
 
 def cfg(name, ef):
-    return {"name": name, "error_feedback": ef, "fraction": 0.1, "rank": 2, "levels": 4, "bucket_kib": TINY}
+    return {"name": name, "error_feedback": ef, "fraction": 0.1, "rank": 2, "exact_until": 0, "levels": 4, "bucket_kib": TINY}
 
 
 def run(layout, collective, rank):

@@ -19,13 +19,13 @@ import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
-from scaledrill.sync.layer import DEFAULTS as SYNC_DEFAULTS
+from scaledrill.sync.settings import SyncConfig
 
 from .common import MICRO, WORKERS, pin_threads, step0_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 PROCS = 2
-DEFAULT_KIB = float(SYNC_DEFAULTS["bucket_kib"])
+DEFAULT_KIB = float(SyncConfig.bucket_kib)
 
 
 def free_port() -> int:

@@ -8,6 +8,7 @@ valid keys (difflib) and, for a key this project renamed, the new name.
 
 import dataclasses
 import difflib
+import re
 
 from omegaconf import DictConfig, OmegaConf
 
@@ -19,21 +20,27 @@ RENAMED = {
     "sync.start_step": "sync.exact_until",
     "sync.min_compression": "sync.min_saving",
     "sync.bucket_mib": "sync.bucket_kib (KiB: 16384 is 16 MiB)",
-    "ladder.target": "ladder.goal",
     "ladder.target.metric": "ladder.goal.metric",
     "ladder.target.value": "ladder.goal.value",
     "ladder.target.mode": "ladder.goal.reached_when",
+    "ladder.target": "ladder.goal",  # after its keys: the first match names the new key
     "ladder.mode": "ladder.grow",
     "recipe": "the preset group scenario (+scenario=NAME)",
 }
 RENAMED_GROUPS = {"recipe": "scenario"}
 
 
-def unknown_key(key: str, known: list[str]) -> ConfigError:
-    """The error for `key`, which does not exist; `known` are the keys beside it."""
+def renamed(key: str) -> ConfigError | None:
     for old, new in RENAMED.items():
         if key == old or key.startswith(old + "."):
             return ConfigError(key, f"was renamed: use {new}")
+    return None
+
+
+def unknown_key(key: str, known: list[str]) -> ConfigError:
+    """The error for `key`, which does not exist; `known` are the keys beside it."""
+    if renamed(key) is not None:
+        return renamed(key)
     parent = key.rpartition(".")[0]
     full = [f"{parent}.{k}" if parent else k for k in known]
     near = difflib.get_close_matches(key, full, n=3, cutoff=0.6)
@@ -90,6 +97,9 @@ def composition_error(err: Exception) -> ConfigError:
         first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
         return ConfigError("overrides", f"cannot compose the configuration: {first}")
     key, kind = cause.full_key, cause.object_type
+    typed = re.search(r"override '([^']+)'", str(err))  # the key as given, when its parent is what is missing
+    if typed and renamed(typed.group(1)) is not None:
+        return renamed(typed.group(1))
     if isinstance(cause, (ConfigKeyError, AttributeError)):
         if dataclasses.is_dataclass(kind):
             return unknown_key(key, [f.name for f in dataclasses.fields(kind)])

@@ -38,7 +38,7 @@ def rung_lr(cfg) -> float:
     """The peak rate the scaling rule gives the rung's global batch."""
     s, L = cfg.scaling, cfg.layout
     base = None if s.rule == "none" else s.base_batch
-    return scaled_lr(s.rule, s.base_lr, base, L.workers * L.micro_batch * L.accum, s.get("exponent", 1.0))
+    return scaled_lr(s.rule, s.base_lr, base, L.workers * L.micro_batch * L.accum, s.exponent)
 
 
 def _in_process(cfg, plan: Plan, run_dir: Path, tick) -> tuple[dict, Watch]:

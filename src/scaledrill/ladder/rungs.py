@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from omegaconf import OmegaConf
 
 from scaledrill.config.validate import validate_run
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.train.run import PROCS_PER_CORE
 
 GROWTHS = ("workers", "accum")  # ladder.grow: which factor of B = W·b·k grows
@@ -65,7 +65,7 @@ def _whole(node, key: str, allow_none: bool = False) -> int | None:
     value = node.get(key)
     if value is None and allow_none:
         return None
-    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+    if not is_whole(value) or value < 1:
         raise ConfigError(f"ladder.{key}", "must be a positive whole number" + (" or null" if allow_none else ""), value)
     return value
 
@@ -74,7 +74,7 @@ def read_goal(node) -> Goal:
     metric, value, reached_when = node.metric, node.value, node.reached_when
     if not isinstance(metric, str) or not metric:
         raise ConfigError("ladder.goal.metric", f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}", metric)
-    if value is not None and (not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value)):
+    if value is not None and (not is_number(value) or not math.isfinite(value)):
         raise ConfigError("ladder.goal.value", "must be a finite number or null", value)
     if reached_when not in ("below", "above"):
         raise ConfigError("ladder.goal.reached_when", "must be below or above", reached_when)
@@ -86,7 +86,7 @@ def batches_of(cfg) -> list[int]:
     node = cfg.ladder
     if node.get("batches") is not None:
         batches = list(node.batches)
-        if not batches or any(not isinstance(b, int) or isinstance(b, bool) or b < 1 for b in batches):
+        if not batches or any(not is_whole(b) or b < 1 for b in batches):
             raise ConfigError("ladder.batches", "must be a non-empty list of positive whole numbers", batches)
         if len(set(batches)) != len(batches):
             raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
