@@ -31,6 +31,7 @@ RENAMED_GROUPS = {"recipe": "scenario"}
 
 
 def renamed(key: str) -> ConfigError | None:
+    """The error for a key this project renamed (or a key under it); None for any other key."""
     for old, new in RENAMED.items():
         if key == old or key.startswith(old + "."):
             return ConfigError(key, f"was renamed: use {new}")

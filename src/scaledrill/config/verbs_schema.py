@@ -109,7 +109,7 @@ class ClusterConfig:
     overlap: float = MISSING  # share of the all-reduce that can hide behind the backward, [0, 1]
     price_per_device_hour: float = MISSING
     flops_per_sample: Optional[float] = None  # null = measured from the model
-    grad_bytes: Optional[int] = None  # null = trainable parameter bytes of the model
+    grad_bytes: Optional[float] = None  # null = trainable parameter bytes of the model
     compression_ratio: Optional[float] = None  # null = 1, or the ratio a run's summary reports
     ladder: Optional[str] = None  # path to a ladder.json for steps-to-target per batch
     run: Optional[str] = None  # path to a run directory's summary.json
