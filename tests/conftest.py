@@ -7,6 +7,7 @@ from pathlib import Path
 
 from hydra import compose, initialize_config_dir
 from hydra.errors import HydraException
+from omegaconf import OmegaConf
 
 import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
 from scaledrill.config.keys import composition_error
@@ -24,6 +25,11 @@ def make_config(*overrides: str, name: str = "run"):
             return compose(name, overrides=list(overrides))
         except HydraException as err:
             raise composition_error(err) from err
+
+
+def composed(group: str, option: str):
+    """A group option as the verbs compose it (its schema's defaults, then the YAML file), as a plain mutable config."""
+    return OmegaConf.create(OmegaConf.to_container(make_config(f"{group}={option}", name="forecast")[group]))
 
 
 def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:

@@ -7,6 +7,7 @@ from pathlib import Path
 import pytest
 from omegaconf import OmegaConf
 
+from conftest import composed
 from scaledrill.commands.report import report_verb
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
@@ -139,7 +140,7 @@ def make_ladder(directory: Path) -> Path:
 
 def make_forecast(directory: Path) -> Path:
     directory.mkdir(parents=True, exist_ok=True)
-    cluster = validate(OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"))
+    cluster = validate(composed("forecast", "example"))
     rungs = [{"global_batch": 256, "steps_to_target": 4000}, {"global_batch": 4096, "steps_to_target": 600},
              {"global_batch": 65536, "steps_to_target": None}]  # fmt: skip
     rows = project_rungs(cluster, rungs, 2e9, 4e8, None)

@@ -12,6 +12,7 @@ import re
 
 from omegaconf import DictConfig, OmegaConf
 
+from scaledrill.config.schema import TaskConfig
 from scaledrill.errors import ConfigError
 
 # old key -> its new name; refused with a message naming the new key
@@ -28,6 +29,7 @@ RENAMED = {
     "recipe": "the preset group scenario (+scenario=NAME)",
 }
 RENAMED_GROUPS = {"recipe": "scenario"}
+UNTYPED = {"task": TaskConfig}  # composed without its dataclass (config/store.py); its keys are still these
 
 
 def renamed(key: str) -> ConfigError | None:
@@ -59,15 +61,17 @@ def unknown_option(group: str, option: str, options: list[str]) -> ConfigError:
     return ConfigError(group, f"no option {option!r}; {hint}choose one of {', '.join(shown)}")
 
 
-def schema_keys(node) -> list[str] | None:
+def schema_keys(node, path: str = "") -> list[str] | None:
     """The keys the dataclass behind `node` declares; None for an open node (a task's model, data, loss)."""
     kind = OmegaConf.get_type(node)
-    return [f.name for f in dataclasses.fields(kind)] if dataclasses.is_dataclass(kind) else None
+    if not dataclasses.is_dataclass(kind):
+        kind = UNTYPED.get(path)
+    return [f.name for f in dataclasses.fields(kind)] if kind else None
 
 
 def refuse_unknown(cfg, prefix: str = "") -> None:
     """Raise ConfigError for the first key a schema does not declare (an addition like +train.epochs=90)."""
-    known = schema_keys(cfg)
+    known = schema_keys(cfg, prefix[:-1])
     for key in cfg.keys():
         if key == "hydra" and not prefix:
             continue

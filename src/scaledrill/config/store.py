@@ -6,8 +6,9 @@ and the tests import it before they compose. Each group's YAML options start fro
 """
 
 from hydra.core.config_store import ConfigStore
+from omegaconf import OmegaConf
 
-from scaledrill.config.schema import GROUPS, RunConfig
+from scaledrill.config.schema import GROUPS, RunConfig, TaskConfig
 from scaledrill.config.verbs_schema import CheckRoot, ClusterConfig, ForecastRoot, LadderRoot, ReplayRoot, ReportRoot
 
 
@@ -15,6 +16,8 @@ def register() -> None:
     store = ConfigStore.instance()
     for group, schemas in GROUPS.items():
         for name, node in schemas.items():
+            if node is TaskConfig:  # stored untyped, so `~task.model` can swap in a model of the user's own
+                node = OmegaConf.to_container(OmegaConf.structured(TaskConfig))
             store.store(group=group, name=name, node=node)
     store.store(group="forecast", name="base_cluster", node=ClusterConfig)
     store.store(name="base_run", node=RunConfig)
