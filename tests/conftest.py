@@ -29,7 +29,8 @@ def make_config(*overrides: str, name: str = "run"):
 
 def composed(group: str, option: str):
     """A group option as the verbs compose it (its schema's defaults, then the YAML file), as a plain mutable config."""
-    return OmegaConf.create(OmegaConf.to_container(make_config(f"{group}={option}", name="forecast")[group]))
+    verb = "forecast" if group == "forecast" else "run"
+    return OmegaConf.create(OmegaConf.to_container(make_config(f"{group}={option}", name=verb)[group]))
 
 
 def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:

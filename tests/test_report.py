@@ -210,7 +210,7 @@ def test_ladder_report_with_forecast_beside_it(tmp_path):
     assert list(page.sections) == ["ladder", "forecast"]
     lad, fc = page.sections["ladder"], page.sections["forecast"]
     assert [i["alt"][:22] for i in pngs(lad)] == ["Steps to target agains", "Learning-rate trials a"]
-    assert lad["captions"] == ["Rungs (mode: workers)", "Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)",
+    assert lad["captions"] == ["Rungs (grow: workers)", "Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)",
                                "Learning-rate search per rung"]  # fmt: skip
     assert len(pngs(fc)) == 1 and "cheapest and fastest marked" in fc["imgs"][0]["alt"]
     assert fc["captions"] == ["Projection per rung", "Cluster as described", "Inputs of the projection",
