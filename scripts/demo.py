@@ -19,7 +19,7 @@ SCALEDRILL = [sys.executable, "-m", "scaledrill.cli"]
 
 LADDER = [
     "task=digits", "layout.micro_batch=16", "ladder.batches=[32,64,128,256,512]",
-    "ladder.target.metric=accuracy", "ladder.target.value=0.9", "ladder.target.mode=above",
+    "ladder.goal.metric=accuracy", "ladder.goal.value=0.9", "ladder.goal.reached_when=above",
     "ladder.max_steps=300", "ladder.check_every=10", "scaling=sqrt", "scaling.base_batch=32",
 ]
 
@@ -45,7 +45,7 @@ def main() -> None:
     step("3. forecast: what would each rung cost on the example cluster?",
          "forecast", "task=digits", f"forecast.ladder={out}/ladder-sgd", f"hydra.run.dir={out}/forecast")
     step("4a. a recipe scaled 64x by the linear rule diverges (detectors stop it, an incident is written)",
-         "run", "+recipe=divergence", "train.progress=false", f"hydra.run.dir={out}/blowup")
+         "run", "+scenario=divergence", "train.progress=false", f"hydra.run.dir={out}/blowup")
     step("4b. replay: the same steps again, and fixes side by side, from the newest checkpoint before the blow-up",
          "replay", f"replay.from={out}/blowup", '+replay.variants.clip="optim.clip_norm=2.0"', '+replay.variants.sqrt="scaling.rule=sqrt"',
          '+replay.variants.lamb=["optim=lamb","optim.lr=0.002","scaling.rule=sqrt"]', f"hydra.run.dir={out}/replay")

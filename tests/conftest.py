@@ -6,6 +6,11 @@ import sys
 from pathlib import Path
 
 from hydra import compose, initialize_config_dir
+from hydra.errors import HydraException
+from omegaconf import OmegaConf
+
+import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
+from scaledrill.config.keys import composition_error
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
@@ -13,9 +18,19 @@ SCALEDRILL = [sys.executable, "-m", "scaledrill.cli"]
 
 
 def make_config(*overrides: str, name: str = "run"):
-    """The composed config of a verb, as Hydra would build it from the command line."""
+    """The composed config of a verb, as Hydra would build it from the command line; a
+    composition error (unknown key, wrong type) becomes the ConfigError the command line reports."""
     with initialize_config_dir(CONFIGS, version_base=None):
-        return compose(name, overrides=list(overrides))
+        try:
+            return compose(name, overrides=list(overrides))
+        except HydraException as err:
+            raise composition_error(err) from err
+
+
+def composed(group: str, option: str):
+    """A group option as the verbs compose it (its schema's defaults, then the YAML file), as a plain mutable config."""
+    verb = "forecast" if group == "forecast" else "run"
+    return OmegaConf.create(OmegaConf.to_container(make_config(f"{group}={option}", name=verb)[group]))
 
 
 def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:

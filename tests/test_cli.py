@@ -112,7 +112,7 @@ def test_recipe_prints_and_writes_recipe_json(tmp_path):
 
 def test_a_diverged_run_says_where_it_broke_and_how_to_replay(tmp_path):
     run_dir = tmp_path / "blowup"
-    done = run_cli("run", "+recipe=divergence", "train.progress=false", f"hydra.run.dir={run_dir}", check=True)
+    done = run_cli("run", "+scenario=divergence", "train.progress=false", f"hydra.run.dir={run_dir}", check=True)
     summary = json.loads((run_dir / "summary.json").read_text())
     assert summary["diverged"]
     assert f"diverged after {summary['steps']} steps (loss spike at step" in done.stdout

@@ -14,7 +14,7 @@ KEYS = [
     "train.steps", "train.seed", "train.eval_every", "train.tail", "train.grads", "train.dtype", "train.timeout_s",
     "optim.lr", "optim.momentum", "optim.weight_decay", "optim.clip_norm",
     "scaling.rule", "scaling.base_batch", "scaling.exponent", "schedule.warmup_steps", "schedule.name",
-    "sync.name", "sync.fraction", "sync.bucket_mib", "telemetry.layer_every", "telemetry.noise_decay",
+    "sync.name", "sync.fraction", "sync.bucket_kib", "telemetry.layer_every", "telemetry.noise_decay",
 ]
 VALUES = st.one_of(
     st.none(), st.booleans(), st.integers(-10, 10**6), st.floats(allow_nan=True, allow_infinity=True),

@@ -1,15 +1,13 @@
 import math
-from pathlib import Path
 
 import numpy as np
 import pytest
 from omegaconf import OmegaConf
 
+from conftest import composed
 from scaledrill.errors import ConfigError
 from scaledrill.telemetry import validate
 from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, build_detectors
-
-DEFAULT_YAML = Path(__file__).parents[1] / "src" / "scaledrill" / "conf" / "telemetry" / "default.yaml"
 
 
 def healthy(steps=1000, seed=0):
@@ -79,7 +77,7 @@ def test_state_survives_resume():
 
 
 def test_build_from_the_default_config():
-    cfg = OmegaConf.load(DEFAULT_YAML)
+    cfg = composed("telemetry", "default")
     validate(cfg)
     kinds = [type(d) for d in build_detectors(cfg)]
     assert kinds == [NonFinite, LossSpike, GradExplosion]

@@ -3,7 +3,6 @@
 import json
 import math
 from dataclasses import replace
-from pathlib import Path
 
 import pytest
 import torch
@@ -11,6 +10,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from omegaconf import OmegaConf
 
+from conftest import composed
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import (
     ALGORITHMS,
@@ -26,8 +26,6 @@ from scaledrill.forecast import (
     render_forecast,
     validate,
 )  # fmt: skip
-
-EXAMPLE = Path(__file__).resolve().parents[1] / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"
 
 # ---------------------------------------------------------------- collectives
 
@@ -208,7 +206,7 @@ def test_project_rungs_rows_and_flags():
 
 
 def test_forecast_document_and_table_carry_the_caution():
-    cluster = validate(OmegaConf.load(EXAMPLE))
+    cluster = validate(composed("forecast", "example"))
     rows = project_rungs(cluster, [{"global_batch": 1024, "steps_to_target": 3000}], 1e11, 5e8)
     doc = forecast_json(cluster, rows, 1e11, 5e8, None, {"flops_per_sample": "config"})
     json.loads(json.dumps(doc))  # plain JSON
@@ -260,7 +258,7 @@ def test_more_devices_never_more_compute(nodes_a, nodes_b, per_node, batch):
 
 
 def test_example_config_is_valid():
-    cluster = validate(OmegaConf.load(EXAMPLE))
+    cluster = validate(composed("forecast", "example"))
     assert (cluster.devices, cluster.nodes, cluster.algorithm) == (256, 32, "two_level")
     # units: 25 GB/s -> β = 1/(25e9) s/byte; 15 µs -> α = 1.5e-5 s
     assert cluster.inter == pytest.approx((1.5e-5, 4e-11), rel=1e-12)
@@ -277,7 +275,7 @@ def test_example_config_is_valid():
     ],
 )  # fmt: skip
 def test_bad_cluster_names_the_key(key, value):
-    node = OmegaConf.load(EXAMPLE)
+    node = composed("forecast", "example")
     node[key] = value
     with pytest.raises(ConfigError) as caught:
         validate(node)
@@ -285,10 +283,10 @@ def test_bad_cluster_names_the_key(key, value):
 
 
 def test_missing_and_unknown_keys_are_named():
-    node = OmegaConf.load(EXAMPLE)
+    node = composed("forecast", "example")
     node.devices = "???"
     with pytest.raises(ConfigError, match="forecast.devices: is required"):
         validate(node)
-    node = OmegaConf.to_container(OmegaConf.load(EXAMPLE)) | {"bandwith_gbps": 10}
+    node = OmegaConf.to_container(composed("forecast", "example")) | {"bandwith_gbps": 10}
     with pytest.raises(ConfigError, match="forecast.bandwith_gbps: is not a forecast setting"):
         validate(node)

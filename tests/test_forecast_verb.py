@@ -6,6 +6,7 @@ from pathlib import Path
 import pytest
 from omegaconf import OmegaConf
 
+from conftest import composed
 from scaledrill.commands.forecast import forecast_verb
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION
@@ -24,14 +25,14 @@ RUNGS = [{"global_batch": 64, "steps_to_target": 4000}, {"global_batch": 256, "s
 
 
 def config(forecast: dict, batches=(256, 1024)) -> OmegaConf:
-    task = OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "task" / "digits.yaml")
+    task = composed("task", "digits")
     return OmegaConf.create({"forecast": forecast, "task": task, "batches": list(batches), "debug": False})
 
 
 def ladder(tmp_path: Path, rungs=RUNGS) -> Path:
     directory = tmp_path / "ladder"
     directory.mkdir(exist_ok=True)
-    (directory / "ladder.json").write_text(json.dumps({"mode": "workers", "rungs": rungs, "fit": None}))
+    (directory / "ladder.json").write_text(json.dumps({"grow": "workers", "rungs": rungs, "fit": None}))
     return directory
 
 
@@ -85,7 +86,7 @@ def test_without_a_ladder_projects_step_time_for_the_batches(tmp_path):
 
 def test_flops_and_bytes_are_measured_on_the_task_model(tmp_path):
     cfg = config(HAND | {"flops_per_sample": None, "grad_bytes": None})
-    cfg.task = OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "task" / "teacher.yaml")  # MLP 32 -> 64 -> 64 -> 8
+    cfg.task = composed("task", "teacher")  # MLP 32 -> 64 -> 64 -> 8
     doc = run(cfg, tmp_path)
     # closed form, 2·m·n·k per matmul: forward 2·(32·64 + 64·64 + 64·8) = 13312 per sample; backward
     # the weight gradients (13312 again) plus the input gradients of layers 2 and 3, 2·(64·64 + 64·8) = 9216

@@ -27,7 +27,7 @@ QUAD = (
 
 
 def ladder_cfg(*overrides):
-    return make_config(*QUAD, f"ladder.target.value={TARGET}", "ladder.check_every=1", *overrides, name="ladder")
+    return make_config(*QUAD, f"ladder.goal.value={TARGET}", "ladder.check_every=1", *overrides, name="ladder")
 
 
 def closed_form_lr(batch, goal):
@@ -80,7 +80,7 @@ def test_ladder_json_and_the_two_modes(tmp_path):
     out = ladder_verb(ladder_cfg(*SMALL), tmp_path / "workers")
     saved = json.loads((tmp_path / "workers" / "ladder.json").read_text())
     assert saved == json.loads(json.dumps(out.payload)) and out.exit_code == 0
-    assert set(saved) == {"mode", "target", "rungs", "fit", "noise_scale_measured", "search"}
+    assert set(saved) == {"grow", "goal", "rungs", "fit", "noise_scale_measured", "search"}
     rungs = saved["rungs"]
     assert [r["global_batch"] for r in rungs] == [4, 8, 16] and [r["workers"] for r in rungs] == [2, 4, 8]
     assert [r["lr"] for r in rungs] == pytest.approx([0.2, 0.4, 0.8])  # linear rule, Goyal et al. 2017
@@ -95,7 +95,7 @@ def test_ladder_json_and_the_two_modes(tmp_path):
     assert steps[0] / steps[1] == pytest.approx(2, rel=0.3) and steps[1] / steps[2] == pytest.approx(2, rel=0.3)
     assert saved["fit"]["s_min"] < steps[-1] / 4 and saved["search"] is None  # steps still fall as 1/B
 
-    accum = ladder_verb(ladder_cfg(*SMALL, "ladder.mode=accum"), tmp_path / "accum").payload
+    accum = ladder_verb(ladder_cfg(*SMALL, "ladder.grow=accum"), tmp_path / "accum").payload
     assert [(r["workers"], r["accum"]) for r in accum["rungs"]] == [(2, 1), (2, 2), (2, 4)]
     # exact averaging: the same global batches, so the same steps (±1 for float summation order)
     for a, b in zip(accum["rungs"], rungs):
@@ -107,7 +107,7 @@ def test_unreachable_target_reports_null_not_a_hang(tmp_path):
     h, c = (v.numpy() for v in spectrum(DIM))
     floor = 0.5 * float((lr * c / (batch * (2 - lr * h))).sum())  # E[L_∞] of SGD, Zhang et al. 2019
     # the loss is a sum of 16 scaled χ²(1) terms about the floor: below floor/10 it is out of reach
-    cfg = ladder_cfg("layout.workers=4", "ladder.rungs=1", f"optim.lr={lr}", f"ladder.target.value={floor / 10}",
+    cfg = ladder_cfg("layout.workers=4", "ladder.rungs=1", f"optim.lr={lr}", f"ladder.goal.value={floor / 10}",
                      "ladder.max_samples=1600", "ladder.check_every=5")
     out = ladder_verb(cfg, tmp_path).payload["rungs"][0]
     assert out["steps_to_target"] is None and out["samples_to_target"] is None and not out["diverged"]
@@ -120,10 +120,10 @@ def test_unreachable_target_reports_null_not_a_hang(tmp_path):
     "overrides, key, words",
     [
         (("layout.workers=3", "layout.procs=3", "layout.backend=gloo", "ladder.batches=[6,8]"), "layout.workers", "B=8"),
-        (("layout.workers=4", "ladder.mode=accum", "ladder.batches=[8,12]"), "ladder.batches", "multiple"),
+        (("layout.workers=4", "ladder.grow=accum", "ladder.batches=[8,12]"), "ladder.batches", "multiple"),
         (("ladder.max_samples=10", "layout.workers=8"), "ladder.max_samples", "B=16"),
-        (("ladder.target.mode=under",), "ladder.target.mode", "below"),
-        (("ladder.mode=both",), "ladder.mode", "workers"),
+        (("ladder.goal.reached_when=under",), "ladder.goal.reached_when", "below"),
+        (("ladder.grow=both",), "ladder.grow", "workers"),
         (("ladder.parallel=999",), "ladder.parallel", "cores"),
     ],
 )
@@ -151,8 +151,8 @@ def test_bad_ladder_from_the_command_line_exits_2(tmp_path):
 def test_finished_rungs_are_kept_when_a_later_rung_fails(tmp_path):
     # digits has fewer training samples than B=2048, so the last rung fails when it starts
     cfg = make_config("task=digits", "layout.workers=4", "layout.micro_batch=64", "ladder.rungs=4", "ladder.max_steps=1",
-                      "train.progress=false", "telemetry.layer_every=0", "ladder.target.metric=accuracy",
-                      "ladder.target.mode=above", "ladder.target.value=0.99", name="ladder")
+                      "train.progress=false", "telemetry.layer_every=0", "ladder.goal.metric=accuracy",
+                      "ladder.goal.reached_when=above", "ladder.goal.value=0.99", name="ladder")
     out = ladder_verb(cfg, tmp_path)
     saved = json.loads((tmp_path / "ladder.json").read_text())
     assert out.exit_code == 1
@@ -166,8 +166,8 @@ def test_finished_rungs_are_kept_when_a_later_rung_fails(tmp_path):
 
 def test_a_metric_the_task_lacks_names_the_key_and_the_rung(tmp_path):
     with pytest.raises(ConfigError) as err:
-        ladder_verb(ladder_cfg("layout.workers=4", "ladder.rungs=2", "ladder.target.metric=accuracy"), tmp_path)
-    assert err.value.key == "ladder.target.metric" and "reports loss" in str(err.value) and "rung B=8" in str(err.value)
+        ladder_verb(ladder_cfg("layout.workers=4", "ladder.rungs=2", "ladder.goal.metric=accuracy"), tmp_path)
+    assert err.value.key == "ladder.goal.metric" and "reports loss" in str(err.value) and "rung B=8" in str(err.value)
     assert not (tmp_path / "rung-B0016").exists()
 
 
@@ -186,7 +186,7 @@ def _signal_once_training(store, give_up_s: float = 60.0) -> None:
 
 def test_a_signal_stops_the_ladder_instead_of_starting_the_next_rung(tmp_path):
     # the target is out of reach, so the first rung is still training when the signal comes
-    cfg = ladder_cfg("layout.workers=2", "ladder.rungs=2", "ladder.target.value=1e-9", "ladder.check_every=1000",
+    cfg = ladder_cfg("layout.workers=2", "ladder.rungs=2", "ladder.goal.value=1e-9", "ladder.check_every=1000",
                      "ladder.max_steps=5000", "telemetry.flush_every=1")
     stray = []  # a signal outside the training loop lands here, not in pytest
     previous = signal.signal(signal.SIGINT, lambda *frame: stray.append(frame))

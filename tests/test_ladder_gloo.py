@@ -23,7 +23,7 @@ from scaledrill.telemetry.store import read_scalars
 QUAD = (
     "task=quadratic", "task.data.dim=16", "optim.momentum=0", "layout.micro_batch=2", "layout.workers=2",
     "telemetry.layer_every=0", "train.progress=false", "train.eval_every=0", "optim.lr=0.2", "scaling=linear",
-    "scaling.base_batch=4", "ladder.target.value=0.05",
+    "scaling.base_batch=4", "ladder.goal.value=0.05",
 )
 GLOO = ("layout.backend=gloo", "layout.procs=2")
 C, U = 32, 2.0**-24
@@ -49,7 +49,7 @@ def rung_dir(record: dict) -> Path:
 
 def test_gloo_rungs_read_the_first_hit_of_the_training_loss_back_from_the_store(tmp_path):
     # checks at steps 7 and 13 (the last of the budget, which 7 does not divide)
-    local, gloo = both_ladders(tmp_path, "ladder.rungs=2", "ladder.target.metric=train_loss", "ladder.check_every=7",
+    local, gloo = both_ladders(tmp_path, "ladder.rungs=2", "ladder.goal.metric=train_loss", "ladder.check_every=7",
                                "ladder.max_steps=13")
     early, last = local["rungs"]
     # the setting exercises both reads: one rung hits before its budget ends, one on its very last step
@@ -83,7 +83,7 @@ def test_gloo_rung_reads_the_first_evaluated_hit_back_and_ignores_what_its_budge
     # so the target falls early and the loss explodes later in the budget
     local, gloo = both_ladders(tmp_path, "ladder.batches=[8]", "ladder.check_every=5", "ladder.max_steps=150",
                                "optim.lr=3.0", "schedule.warmup_steps=100", "schedule.warmup_start=0.1",
-                               "ladder.target.value=0.3")
+                               "ladder.goal.value=0.3")
     here, there = local["rungs"][0], gloo["rungs"][0]
     assert summary_of(here)["stopped_early"] and not here["diverged"]  # the local rung stops at the hit
     summary = summary_of(there)

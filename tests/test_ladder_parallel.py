@@ -18,7 +18,7 @@ QUAD = (
     "task=quadratic", "task.data.dim=16", "optim.momentum=0", "layout.micro_batch=2", "layout.workers=2",
     "telemetry.layer_every=0", "train.progress=false", "train.eval_every=0", "ladder.batches=[4,8,16]",
     "optim.lr=0.2", "scaling=linear", "scaling.base_batch=4", "ladder.max_steps=400", "ladder.check_every=2",
-    "ladder.target.value=0.05",
+    "ladder.goal.value=0.05",
 )
 PER_RUN = ("wall_seconds", "run_dir", "error")  # fields of a rung's record that name the run's folder or time
 
@@ -84,6 +84,6 @@ def test_a_pool_job_that_died_is_recorded_against_its_rung(tmp_path):
     assert record["run_dir"] == str(tmp_path / "rung-B0008")
 
     stopped = Future()
-    stopped.set_exception(ConfigError("ladder.target.metric", "the task quadratic reports loss", "acc"))
+    stopped.set_exception(ConfigError("ladder.goal.metric", "the task quadratic reports loss", "acc"))
     with pytest.raises(ConfigError):  # bad configuration still stops the whole ladder
         _collected(stopped, cfg, plan.rungs[0], tmp_path)

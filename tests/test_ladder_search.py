@@ -13,7 +13,7 @@ from scaledrill.ladder.search import SearchSettings, search_lr
 QUAD = (
     "task=quadratic", "task.data.dim=16", "optim.momentum=0", "layout.micro_batch=2", "layout.workers=16",
     "telemetry.layer_every=0", "train.progress=false", "train.eval_every=0", "ladder.rungs=1",
-    "ladder.target.value=0.05", "ladder.check_every=2", "ladder.max_steps=60", "optim.lr=0.5",
+    "ladder.goal.value=0.05", "ladder.check_every=2", "ladder.max_steps=60", "optim.lr=0.5",
 )
 STABLE = 2.0  # plain SGD on the quadratic is stable only for lr < 2/max h = 2 (Zhang et al. 2019; h_max = 1)
 
@@ -46,7 +46,7 @@ def test_search_stops_diverging_trials_and_finds_a_stable_rate():
 def test_the_pruner_stops_slow_trials_before_the_budget(pruner):
     # a target the budget cannot reach, so no trial stops early by succeeding: only the pruner cuts them
     out = search("ladder.search.trials=10", f"ladder.search.pruner={pruner}", "ladder.search.hi=3",
-                 "ladder.target.value=0.001", "ladder.max_steps=40")
+                 "ladder.goal.value=0.001", "ladder.max_steps=40")
     pruned = [t for t in out["trials"] if t["pruned"]]
     assert len(pruned) >= 2 and all(t["steps"] < 40 for t in pruned)
     assert out["pruned"] == len(pruned) and out["window"] is None

@@ -66,7 +66,7 @@ def assert_same(ours, theirs):
 
 
 LARS = dict(name="lars", lr=0.1, momentum=0.9, weight_decay=0.01, trust_coefficient=0.02,
-            denominator="update", trust_clip=None)
+            denominator="update", trust_cap=None)
 
 
 @pytest.mark.parametrize("exclude", [None, []])
@@ -82,7 +82,7 @@ def test_lars_matches_optax(exclude):
 
 
 LAMB = dict(name="lamb", lr=0.01, betas=[0.9, 0.99], eps=1e-6, weight_decay=0.05, decay="decoupled",
-            bias_correction=True, trust_clip=None)
+            bias_correction=True, trust_cap=None)
 
 
 def test_lamb_matches_optax_lamb_with_nothing_excluded():

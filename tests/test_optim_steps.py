@@ -41,9 +41,9 @@ def test_lars_momentum_carries_the_scaled_update():
     assert p.detach()[0, 1].item() == pytest.approx(4 - 0.025 * (1 + 0.9), rel=1e-12)
 
 
-def test_lars_trust_clip_caps_the_ratio():
+def test_lars_trust_cap_caps_the_ratio():
     named, _ = one_matrix([[3.0, 4.0]], [[0.0, 1e-6]])
-    opt = build_optimizer(named, OmegaConf.create({**LARS, "trust_clip": 0.3, "weight_decay": 0.0}))
+    opt = build_optimizer(named, OmegaConf.create({**LARS, "trust_cap": 0.3, "weight_decay": 0.0}))
     opt.step()
     assert opt.trust_ratios["w"] == 0.3  # uncapped it would be 0.01·5/1e-6 = 5e4
 
@@ -80,8 +80,8 @@ def test_lamb_bias_corrected_first_step_by_hand():
     assert p.detach().flatten().tolist() == pytest.approx([3 - 0.1 * rho * r[0], 4 - 0.1 * rho * r[1]], rel=1e-12)
 
 
-def test_lamb_trust_clip_caps_the_ratio():
+def test_lamb_trust_cap_caps_the_ratio():
     named, _ = one_matrix([[300.0, 400.0]], [[1.0, -2.0]])
-    opt = build_optimizer(named, OmegaConf.create({**LAMB, "trust_clip": 10.0}))
+    opt = build_optimizer(named, OmegaConf.create({**LAMB, "trust_cap": 10.0}))
     opt.step()
     assert opt.trust_ratios["w"] == 10.0  # uncapped ≈ 500/√2 ≈ 354

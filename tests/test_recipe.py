@@ -92,7 +92,7 @@ BAD = [
     (["optim.name=adagrad"], "optim.name"),
     (["optim=lars", "optim.trust_coefficient=0"], "optim.trust_coefficient"),
     (["optim=lars", "optim.denominator=both"], "optim.denominator"),
-    (["optim=lamb", "optim.trust_clip=-1"], "optim.trust_clip"),
+    (["optim=lamb", "optim.trust_cap=-1"], "optim.trust_cap"),
     (["optim=lamb", "optim.betas=[0.9,1.0]"], "optim.betas"),
     (["optim.clip_norm=0"], "optim.clip_norm"),
     (["optim.weight_decay=-0.1"], "optim.weight_decay"),

@@ -74,7 +74,7 @@ def test_a_variant_may_not_change_the_layout(tmp_path, small_run):
 
 def test_divergence_demo_is_rescued_from_a_checkpoint(tmp_path):
     run_dir = tmp_path / "blowup"
-    blown = run_verb(make_config("+recipe=divergence", "train.progress=false"), run_dir)
+    blown = run_verb(make_config("+scenario=divergence", "train.progress=false"), run_dir)
     assert blown["diverged"] and 15 < blown["steps"] <= 40 and blown["incidents"]  # after the 15-step warmup
     out = _replay(tmp_path, run_dir, "replay.steps=60", "+replay.variants.clip='optim.clip_norm=2.0'",
                   "+replay.variants.sqrt='scaling.rule=sqrt'")

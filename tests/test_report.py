@@ -7,6 +7,7 @@ from pathlib import Path
 import pytest
 from omegaconf import OmegaConf
 
+from conftest import composed
 from scaledrill.commands.report import report_verb
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
@@ -131,7 +132,7 @@ def make_ladder(directory: Path) -> Path:
     search = {str(r["global_batch"]): {"best_lr": r["lr"], "window": [r["lr"] / 2, r["lr"] * 2], "samples_spent": 9000,
               "trials": [{"lr": r["lr"] * f, "reached": f < 4, "diverged": f >= 4, "pruned": False, "steps": 50}
                          for f in (0.25, 1, 4)]} for r in rungs}  # fmt: skip
-    doc = {"mode": "workers", "rungs": rungs, "search": search,
+    doc = {"grow": "workers", "rungs": rungs, "search": search,
            "fit": {"s_min": s_min, "e_min": s_min * b_noise, "b_noise": b_noise, "b_crit": b_noise}}  # fmt: skip
     (directory / "ladder.json").write_text(json.dumps(doc))
     return directory
@@ -139,7 +140,7 @@ def make_ladder(directory: Path) -> Path:
 
 def make_forecast(directory: Path) -> Path:
     directory.mkdir(parents=True, exist_ok=True)
-    cluster = validate(OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"))
+    cluster = validate(composed("forecast", "example"))
     rungs = [{"global_batch": 256, "steps_to_target": 4000}, {"global_batch": 4096, "steps_to_target": 600},
              {"global_batch": 65536, "steps_to_target": None}]  # fmt: skip
     rows = project_rungs(cluster, rungs, 2e9, 4e8, None)
@@ -209,7 +210,7 @@ def test_ladder_report_with_forecast_beside_it(tmp_path):
     assert list(page.sections) == ["ladder", "forecast"]
     lad, fc = page.sections["ladder"], page.sections["forecast"]
     assert [i["alt"][:22] for i in pngs(lad)] == ["Steps to target agains", "Learning-rate trials a"]
-    assert lad["captions"] == ["Rungs (mode: workers)", "Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)",
+    assert lad["captions"] == ["Rungs (grow: workers)", "Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)",
                                "Learning-rate search per rung"]  # fmt: skip
     assert len(pngs(fc)) == 1 and "cheapest and fastest marked" in fc["imgs"][0]["alt"]
     assert fc["captions"] == ["Projection per rung", "Cluster as described", "Inputs of the projection",

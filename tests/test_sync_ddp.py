@@ -93,7 +93,7 @@ def _run(rank, port, out_dir):
     state = PowerSGDState(None, matrix_approximation_rank=1, start_powerSGD_iter=2, min_compression_rate=1,
                           use_error_feedback=False, warm_start=True)
     ddp.register_comm_hook(state, powerSGD_hook)
-    cfg = {"name": "powersgd", "rank": 1, "start_step": 2, "error_feedback": False}
+    cfg = {"name": "powersgd", "rank": 1, "exact_until": 2, "error_feedback": False}
     sync = build_sync(cfg, layout, [torch.Size([16, 24]), torch.Size([24])], coll, seed=0)
     theirs, ours, errors = [], [], []
     for step in range(STEPS):

@@ -23,7 +23,7 @@ from scaledrill.sync.compress import NAMES
 W, STEPS = 8, 4
 SHAPES = [torch.Size([12, 10]), torch.Size([10]), torch.Size([6, 5])]  # n = 160
 CONFIGS = [(name, ef) for name in NAMES for ef in (False, True)]
-TINY = 400 / 2**20  # 100 float32 per bucket: several buckets per all-reduce
+TINY = 400 / 2**10  # 100 float32 per bucket: several buckets per all-reduce
 
 
 def grads(step: int, workers: range) -> torch.Tensor:
@@ -35,7 +35,7 @@ def grads(step: int, workers: range) -> torch.Tensor:
 
 
 def cfg(name, ef):
-    return {"name": name, "error_feedback": ef, "fraction": 0.1, "rank": 2, "levels": 4, "bucket_mib": TINY}
+    return {"name": name, "error_feedback": ef, "fraction": 0.1, "rank": 2, "exact_until": 0, "levels": 4, "bucket_kib": TINY}
 
 
 def run(layout, collective, rank):

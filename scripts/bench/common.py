@@ -6,6 +6,8 @@ from pathlib import Path
 import torch
 from hydra import compose, initialize_config_dir
 
+import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
+
 ROOT = Path(__file__).resolve().parents[2]
 CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
 

@@ -19,13 +19,13 @@ import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
-from scaledrill.sync.layer import DEFAULTS as SYNC_DEFAULTS
+from scaledrill.sync.settings import SyncConfig
 
 from .common import MICRO, WORKERS, pin_threads, step0_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 PROCS = 2
-DEFAULT_MIB = float(SYNC_DEFAULTS["bucket_mib"])
+DEFAULT_KIB = float(SyncConfig.bucket_kib)
 
 
 def free_port() -> int:
@@ -63,19 +63,19 @@ def engine_vs_ddp(collective, rounds: int) -> dict:
     return {"ratio": ratios(times, "engine", "ddp"), "engine_ms": ms(times["engine"]), "ddp_ms": ms(times["ddp"])}
 
 
-def allreduce(collective, floats: int, bucket_mib: float, rounds: int) -> dict:
+def allreduce(collective, floats: int, bucket_kib: float, rounds: int) -> dict:
     """The sync layer's exact reduce (bucketed, input donated as the engine does) vs one dist.all_reduce of the same flat vector."""
     from scaledrill.layout import Layout
     from scaledrill.sync import build_sync
 
     layout = Layout(PROCS, PROCS, 1, 1, "gloo")
-    sync = build_sync({"name": "exact", "fidelity": False, "bucket_mib": bucket_mib}, layout, [torch.Size([floats])], collective, seed=0)
+    sync = build_sync({"name": "exact", "fidelity": False, "bucket_kib": bucket_kib}, layout, [torch.Size([floats])], collective, seed=0)
     local, raw = torch.randn(1, floats), torch.randn(floats)
     workers = layout.worker_ids(collective.rank)
     cases = {"layer": lambda: sync.reduce(local, workers, 0, donate=True), "raw": lambda: dist.all_reduce(raw)}
     times = interleave(cases, rounds, block=10, warmup=5, sync=dist.barrier, clock=time.perf_counter)
     mb = floats * 4 / 1e6
-    return {"floats": floats, "bucket_mib": bucket_mib, "throughput": ratios(times, "raw", "layer"),
+    return {"floats": floats, "bucket_kib": bucket_kib, "throughput": ratios(times, "raw", "layer"),
             "layer_MBps": mb / (ms(times["layer"]) / 1e3), "raw_MBps": mb / (ms(times["raw"]) / 1e3)}
 
 
@@ -87,7 +87,7 @@ def _child(rank: int, port: int, threads: int, rounds: int, floats: int, out: st
     collective = open_collective("gloo", timeout_s=300)
     try:
         result = {"ddp": engine_vs_ddp(collective, rounds),
-                  "allreduce": [allreduce(collective, floats, mib, rounds) for mib in (DEFAULT_MIB, 1.0)]}
+                  "allreduce": [allreduce(collective, floats, kib, rounds) for kib in (DEFAULT_KIB, 1024.0)]}
         if rank == 0:
             Path(out).write_text(json.dumps(result))
         dist.barrier()
@@ -104,10 +104,10 @@ def run(threads: int, rounds: int, floats: int = 2_000_000) -> list[Row]:
     rows = [Row("engine (2 gloo procs) / torch DDP (2 gloo procs)", d["ratio"]["median"], d["ratio"], "<= 1.10",
                 note=f"W={WORKERS}, b={MICRO}, fused; engine {d['engine_ms']:.1f} ms, DDP {d['ddp_ms']:.1f} ms", detail=d)]
     for a in result["allreduce"]:
-        default = a["bucket_mib"] == DEFAULT_MIB  # the goal holds at the default; smaller buckets are shown for their cost
-        rows.append(Row(f"bucketed all-reduce throughput / raw ({a['bucket_mib']:g} MiB buckets)", a["throughput"]["median"],
+        default = a["bucket_kib"] == DEFAULT_KIB  # the goal holds at the default; smaller buckets are shown for their cost
+        rows.append(Row(f"bucketed all-reduce throughput / raw ({a['bucket_kib'] / 1024:g} MiB buckets)", a["throughput"]["median"],
                         a["throughput"], ">= 0.9" if default else None,
                         note=f"{a['floats'] * 4 / 1e6:.0f} MB; {a['layer_MBps']:.0f} vs {a['raw_MBps']:.0f} MB/s"
-                        + ("" if a["bucket_mib"] * 2**20 >= a["floats"] * 4 else f"; {-(-a['floats'] * 4 // int(a['bucket_mib'] * 2**20))} "
+                        + ("" if a["bucket_kib"] * 2**10 >= a["floats"] * 4 else f"; {-(-a['floats'] * 4 // int(a['bucket_kib'] * 2**10))} "
                            "calls: small buckets pay gloo's per-call latency"), detail=a))
     return rows

@@ -68,7 +68,7 @@ def compressors(rounds: int, workers: int = WORKERS) -> list[Row]:
     """
     built = {"exact": trainer("train.grads=vmap", workers=workers)}
     for name in COMPRESSORS:
-        extra = ("sync.start_step=0",) if name == "powersgd" else ()
+        extra = ("sync.exact_until=0",) if name == "powersgd" else ()
         built[name] = trainer(f"sync={name}", "train.grads=vmap", *extra, workers=workers)
     times = interleave({k: t.step for k, t in built.items()}, rounds, block=2, warmup=2)
     rows = []

@@ -8,6 +8,8 @@ from pathlib import Path
 import hydra
 from hydra.core.hydra_config import HydraConfig
 
+import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
+from scaledrill.config.keys import composition_error, refuse_unknown
 from scaledrill.errors import ScaledrillError
 
 CONFIG_DIR = str(Path(__file__).resolve().parent / "conf")  # shipped inside the package
@@ -38,8 +40,9 @@ def _app(verb: str):
     def app(cfg):
         global _started
         _started = True
-        debug = bool(cfg.get("debug", False)) or os.environ.get("SCALEDRILL_DEBUG") == "1"
+        debug = cfg.debug or os.environ.get("SCALEDRILL_DEBUG") == "1"
         try:
+            refuse_unknown(cfg)  # an addition (+train.epochs=90) that no schema declares
             result = function(cfg, Path(HydraConfig.get().runtime.output_dir))
         except ScaledrillError as err:
             if debug:
@@ -73,13 +76,15 @@ def main(argv: list[str] | None = None) -> None:
     if verb == "report" and rest and "=" not in rest[0] and not rest[0].startswith("-"):
         rest = [f"path={rest[0]}", *rest[1:]]  # `scaledrill report PATH`
     sys.argv = [f"scaledrill {verb}", *rest]
+    os.environ["HYDRA_FULL_ERROR"] = "1"  # Hydra raises its errors to us instead of printing them in its words
     try:
         _app(verb)()
-    except SystemExit as exit_:
-        # Hydra exits with 1 for composition errors (unknown key, bad type); those are bad input.
-        if exit_.code == 1 and not _started:
-            raise SystemExit(2) from None
-        raise
+    except Exception as err:
+        if _started or os.environ.get("SCALEDRILL_DEBUG") == "1":
+            raise
+        # composition failed (unknown key or option, wrong type): bad input, in our words
+        print(f"scaledrill {verb}: error: {composition_error(err)}", file=sys.stderr)
+        raise SystemExit(2) from None
 
 
 if __name__ == "__main__":

@@ -5,6 +5,16 @@ the error's own status, so scripts can tell bad input from a failed run.
 """
 
 
+def is_number(value) -> bool:
+    """A real number for a config rule: int or float, but not a bool (which Python counts as an int)."""
+    return isinstance(value, (int, float)) and not isinstance(value, bool)
+
+
+def is_whole(value) -> bool:
+    """A whole number for a config rule: an int, but not a bool."""
+    return isinstance(value, int) and not isinstance(value, bool)
+
+
 class ScaledrillError(Exception):
     """Base class; `exit_code` is the process status the command line returns."""
 

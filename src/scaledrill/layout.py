@@ -8,7 +8,7 @@ computes depends on its global id, never on P or V, which is what makes 1×64,
 
 from dataclasses import dataclass
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_whole
 
 BACKENDS = ("local", "gloo", "mpi")
 
@@ -24,7 +24,7 @@ class Layout:
     def __post_init__(self):
         for key in ("workers", "procs", "micro_batch", "accum"):
             value = getattr(self, key)
-            if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+            if not is_whole(value) or value < 1:
                 raise ConfigError(f"layout.{key}", "must be a positive whole number", value)
         if self.backend not in BACKENDS:
             raise ConfigError("layout.backend", f"must be one of {', '.join(BACKENDS)}", self.backend)

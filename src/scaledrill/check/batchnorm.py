@@ -39,7 +39,7 @@ def path_batchnorm(cfg, settings, model_has_batchnorm: bool) -> str:
     B, per_step = Layout.from_config(L).global_batch, L.workers * L.micro_batch
     if not model_has_batchnorm or B == L.micro_batch:  # no BatchNorm, or one group is the whole batch
         return "worker"
-    if settings.batchnorm == "worker" and cfg.train.get("batchnorm", "worker") == "global":
+    if settings.batchnorm == "worker" and cfg.train.batchnorm == "global":
         raise ConfigError(KEY, f"worker compares with BatchNorm statistics per group of b = {L.micro_batch} samples, but the recipe "
                           f"normalises over all W·b = {per_step} samples of each micro-step (train.batchnorm=global); "
                           "use check.batchnorm=global (with layout.accum=1) to compare it with the true batch", "worker")

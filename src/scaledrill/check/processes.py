@@ -46,7 +46,7 @@ def run_processes(cfg, backend: str, steps: int, run_dir: Path) -> Trajectory:
     OmegaConf.update(laid, "check.steps", steps, force_add=True)
     (work / "config.yaml").write_text(OmegaConf.to_yaml(laid, resolve=True))
     (work / RESULT).unlink(missing_ok=True)
-    launch(work, backend, procs, address=cfg.layout.get("address", "127.0.0.1"), mpiexec=cfg.layout.get("mpiexec"),
+    launch(work, backend, procs, address=cfg.layout.address, mpiexec=cfg.layout.mpiexec,
            job="scaledrill.check.processes:follow_as_rank")  # a free port each time: the check starts several groups
     return Trajectory.from_dict(torch.load(work / RESULT, weights_only=False))
 

@@ -53,7 +53,7 @@ class Runner:
             return run, skipped
         run += ["accumulation"] if "accumulation" in s.paths else []
         for g in wanted_grads:
-            if g == "fused" and self.cfg.sync.get("bitwise", False):
+            if g == "fused" and self.cfg.sync.bitwise:
                 skipped["workers:fused"] = "sync.bitwise needs each worker's gradient; fused gives a process sum"
             else:
                 run.append(f"workers:{g}")

@@ -24,7 +24,7 @@ import torch
 from omegaconf import OmegaConf
 from rich.console import Console
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.forecast import flops_per_sample, forecast_json, param_bytes, project_rungs, render_forecast, validate
 
 
@@ -44,7 +44,7 @@ def read_result(key: str, value: str, name: str) -> dict:
 
 
 def _positive(value) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value) and value > 0
+    return is_number(value) and math.isfinite(value) and value > 0
 
 
 def ladder_rungs(value: str) -> list[dict]:
@@ -56,7 +56,7 @@ def ladder_rungs(value: str) -> list[dict]:
     for i, rung in enumerate(rungs):
         batch = rung.get("global_batch") if isinstance(rung, dict) else None
         steps = rung.get("steps_to_target") if isinstance(rung, dict) else None
-        if not (isinstance(batch, int) and not isinstance(batch, bool) and batch >= 1) or not (
+        if not (is_whole(batch) and batch >= 1) or not (
             steps is None or _positive(steps)
         ):
             raise ConfigError(
@@ -77,7 +77,7 @@ def run_compression(value: str) -> float | None:
 def _batches(cfg) -> list[dict]:
     batches = OmegaConf.to_container(cfg.batches) if cfg.get("batches") is not None else None
     if not isinstance(batches, list) or not batches or not all(
-        isinstance(b, int) and not isinstance(b, bool) and b >= 1 for b in batches
+        is_whole(b) and b >= 1 for b in batches
     ):
         raise ConfigError("batches", "must be a non-empty list of whole global batches >= 1", batches)
     return [{"global_batch": b, "steps_to_target": None} for b in batches]

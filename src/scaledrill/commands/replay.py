@@ -8,7 +8,7 @@ from pathlib import Path
 
 from omegaconf import OmegaConf
 
-from scaledrill.errors import CheckpointError, ConfigError
+from scaledrill.errors import CheckpointError, ConfigError, is_number
 from scaledrill.io import write_json
 from scaledrill.replay.cluster_log import departure_step, read_cluster_log
 from scaledrill.replay.variants import check_layout, compose_variants, find_source, start_checkpoint, variant_overrides
@@ -21,7 +21,7 @@ def replay_verb(cfg, run_dir: Path):
     from scaledrill.replay.show import plot_replay, print_table
 
     node = cfg.replay
-    if node.get("from") is None or OmegaConf.is_missing(node, "from"):
+    if OmegaConf.is_missing(node, "from") or node["from"] is None:
         raise ConfigError("replay.from", "is required: a checkpoint file or a run directory")
     ckpt, source = find_source(node["from"])
     where = source / "config.yaml"
@@ -30,15 +30,15 @@ def replay_verb(cfg, run_dir: Path):
     saved = OmegaConf.to_container(OmegaConf.load(where), resolve=True)
     state = checkpoint.load(ckpt)
     from_step = int(state["step"])
-    steps = node.get("steps") or saved["train"]["steps"]
+    steps = node.steps or saved["train"]["steps"]
     if not isinstance(steps, int) or steps <= from_step:
         raise ConfigError("replay.steps", f"must be a whole number past the checkpoint's step {from_step}", steps)
-    rtol = node.get("departure_rtol", 0.05)
-    if not isinstance(rtol, (int, float)) or isinstance(rtol, bool) or rtol < 0:
+    rtol = node.departure_rtol
+    if not is_number(rtol) or rtol < 0:
         raise ConfigError("replay.departure_rtol", "must be a number >= 0", rtol)
-    log = read_cluster_log(node.cluster_log) if node.get("cluster_log") else None
+    log = read_cluster_log(node.cluster_log) if node.cluster_log else None
 
-    variants = variant_overrides(node.get("variants"))
+    variants = variant_overrides(node.variants)
     configs = compose_variants(saved, str(where), ckpt, steps, variants)
     for name, vcfg in configs.items():
         check_layout(name, vcfg, state)

@@ -10,9 +10,9 @@ from scaledrill.report.html import page
 def report_verb(cfg, run_dir: Path) -> None:
     """Write the report page and print its path; `run_dir` (Hydra's) is not used."""
     root, results = _root(cfg)
-    debug = bool(cfg.get("debug", False))
+    debug = cfg.debug
     sections = [_section(name, directory, root, debug) for name, directory in results]
-    out = Path(str(cfg.out)).expanduser() if cfg.get("out") else root / "report.html"
+    out = Path(str(cfg.out)).expanduser() if cfg.out else root / "report.html"
     if not out.parent.is_dir():
         raise ConfigError("out", "must be a file in an existing directory", str(out))
     out.write_text(page(f"scaledrill report: {root.resolve().name}", str(root), sections), encoding="utf-8")

@@ -21,8 +21,10 @@ from pathlib import Path
 
 from hydra import compose, initialize_config_dir
 from hydra.core.global_hydra import GlobalHydra
-from omegaconf import OmegaConf
+from omegaconf import OmegaConf, open_dict
 
+import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
+from scaledrill.config.schema import GROUPS
 from scaledrill.errors import CheckpointError
 
 CONFIG_DIR = Path(__file__).resolve().parents[1] / "conf"
@@ -81,13 +83,25 @@ def _group_choices(saved: dict) -> list[str]:
         mine = leaves(saved[group.name])
         best, best_score = None, None
         for option in sorted(group.glob("*.yaml")):
-            theirs = leaves(OmegaConf.to_container(OmegaConf.load(option), resolve=False))
+            theirs = leaves(_option_values(group.name, option))
             score = sum(1 for k, v in theirs.items() if k in mine and mine[k] == v) - len(set(theirs) - set(mine))
             if best_score is None or score > best_score:
                 best, best_score = option.stem, score
         if best is not None:
             choices.append(f"{group.name}={best}")
     return choices
+
+
+def _option_values(group: str, option: Path) -> dict:
+    """An option file's values over the schema its defaults list names (the file holds only what differs)."""
+    raw = OmegaConf.load(option)
+    values = OmegaConf.create({})
+    for name in raw.get("defaults", []):
+        if name in GROUPS.get(group, {}):
+            values = OmegaConf.structured(GROUPS[group][name])
+    with open_dict(raw):
+        raw.pop("defaults", None)
+    return OmegaConf.to_container(OmegaConf.merge(values, raw), resolve=False)
 
 
 def rebuild_overrides(saved: dict, where: str = "config.yaml") -> list[str]:

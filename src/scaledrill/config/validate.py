@@ -4,7 +4,7 @@ Each part validates its own keys (layout, optimizer and recipe, sync, telemetry)
 this module only runs them in order and checks the keys of `train`.
 """
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.layout import Layout
 from scaledrill.sync.path import PATHS, grad_path, path_cause
 
@@ -12,7 +12,7 @@ from scaledrill.sync.path import PATHS, grad_path, path_cause
 def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
     value = cfg.train[key]
     low = 0 if allow_zero else 1
-    if not isinstance(value, int) or isinstance(value, bool) or value < low:
+    if not is_whole(value) or value < low:
         rule = "must be a whole number >= 0" if allow_zero else "must be a positive whole number"
         raise ConfigError(f"train.{key}", rule, value)
 
@@ -31,7 +31,7 @@ def batchnorm_path_error(cause: str) -> ConfigError:
 
 
 def validate_batchnorm(cfg) -> None:
-    mode = cfg.train.get("batchnorm", "worker")
+    mode = cfg.train.batchnorm
     if mode not in BATCHNORM:
         raise ConfigError("train.batchnorm", f"must be {' or '.join(BATCHNORM)}", mode)
     cause = path_cause(cfg.train.grads, cfg.sync) if mode == "global" else None
@@ -52,7 +52,7 @@ def validate_train(cfg) -> None:
     if cfg.train.dtype not in ("float32", "float64"):
         raise ConfigError("train.dtype", "must be float32 or float64", cfg.train.dtype)
     timeout = cfg.train.timeout_s
-    if not isinstance(timeout, (int, float)) or isinstance(timeout, bool) or timeout <= 0:
+    if not is_number(timeout) or timeout <= 0:
         raise ConfigError("train.timeout_s", "must be a positive number of seconds", timeout)
 
 

@@ -14,7 +14,7 @@ import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.forecast.collectives import ALGORITHMS
 
 CLUSTER_KEYS = (
@@ -30,13 +30,13 @@ def _key(name: str) -> str:
 
 
 def _count(name: str, value) -> int:
-    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+    if not is_whole(value) or value < 1:
         raise ConfigError(_key(name), "must be a positive whole number", value)
     return value
 
 
 def _number(name: str, value, rule: str, ok) -> float:
-    if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value) or not ok(value):
+    if not is_number(value) or not math.isfinite(value) or not ok(value):
         raise ConfigError(_key(name), rule, value)
     return float(value)
 

@@ -39,14 +39,14 @@ def rung_lr(cfg) -> float:
     """The peak rate the scaling rule gives the rung's global batch."""
     s, L = cfg.scaling, cfg.layout
     base = None if s.rule == "none" else s.base_batch
-    return scaled_lr(s.rule, s.base_lr, base, Layout.from_config(L).global_batch, s.get("exponent", 1.0))
+    return scaled_lr(s.rule, s.base_lr, base, Layout.from_config(L).global_batch, s.exponent)
 
 
 def _in_process(cfg, plan: Plan, run_dir: Path, tick) -> tuple[dict, Watch]:
     from scaledrill.train.engine import run_training
 
     prepare_run_dir(run_dir, cfg)
-    watch = Watch(plan.target, plan.check_every)
+    watch = Watch(plan.goal, plan.check_every)
 
     def on_step(trainer, record):
         tick(trainer.step_index)
@@ -69,18 +69,18 @@ def _launched(cfg, plan: Plan, run_dir: Path) -> tuple[dict, Watch]:
     cfg.train.eval_every = plan.check_every
     summary = run_verb(cfg, run_dir)
     scalars = read_scalars(run_dir / "run.sqlite")
-    if plan.target.metric == TRAIN_LOSS:
+    if plan.goal.metric == TRAIN_LOSS:
         steps, values = scalars["loss"]
         # the store keys a step by its index before the update, Watch by the steps done; like
         # Watch, check the last step of the budget too
         checked = [(int(s) + 1, float(v)) for s, v in zip(steps, values)]
         pairs = [(s, v) for s, v in checked if s % plan.check_every == 0 or s == cfg.train.steps]
     else:
-        pairs = sorted((int(k), v.get(plan.target.metric, math.nan)) for k, v in summary["eval_history"].items())
-    watch = Watch(plan.target, plan.check_every)
+        pairs = sorted((int(k), v.get(plan.goal.metric, math.nan)) for k, v in summary["eval_history"].items())
+    watch = Watch(plan.goal, plan.check_every)
     for step, value in pairs:
         watch.metric = value
-        if plan.target.met(value):
+        if plan.goal.met(value):
             watch.reached_step = step
             break
     if watch.reached_step is not None:
@@ -149,7 +149,7 @@ def _rung_and_search(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda 
         return result, None
     from scaledrill.ladder.search import search_lr
 
-    return result, search_lr(cfg, plan, rung, result["lr"]).to_json(plan.target.mode)
+    return result, search_lr(cfg, plan, rung, result["lr"]).to_json(plan.goal.reached_when)
 
 
 def _job(container: dict, plan: Plan, rung: Rung, ladder_dir: str) -> tuple[dict, dict | None]:
@@ -186,8 +186,8 @@ def ladder_json(plan: Plan, results: list[dict], searches: dict | None) -> dict:
         r["regime"] = regime(r["global_batch"], fit) if fit and not r.get("error") else None
     noise = [r["noise_scale"] for r in rungs if r.get("noise_scale") is not None]
     return {
-        "mode": plan.mode,
-        "target": plan.target.to_json(),
+        "grow": plan.grow,
+        "goal": plan.goal.to_json(),
         "rungs": rungs,
         "fit": None if fit is None else {k: _finite(getattr(fit, k)) for k in ("s_min", "e_min", "b_noise", "b_crit", "residual")},
         "noise_scale_measured": statistics.median(noise) if noise else None,

@@ -19,11 +19,11 @@ from dataclasses import dataclass
 from omegaconf import OmegaConf
 
 from scaledrill.config.validate import validate_run
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.layout import Layout
 from scaledrill.train.run import PROCS_PER_CORE
 
-MODES = ("workers", "accum")
+GROWTHS = ("workers", "accum")  # ladder.grow: which factor of B = W·b·k grows
 TRAIN_LOSS = "train_loss"  # the target metric that reads the step's training loss instead of an evaluation
 
 
@@ -40,24 +40,24 @@ class Rung:
 
 
 @dataclass(frozen=True)
-class Target:
+class Goal:
     metric: str  # an evaluation metric of the task (loss, accuracy) or train_loss
     value: float | None  # None: no target, each rung runs its budget
-    mode: str  # below | above
+    reached_when: str  # below | above
 
     def met(self, value: float) -> bool:
         if self.value is None or not math.isfinite(value):
             return False
-        return value <= self.value if self.mode == "below" else value >= self.value
+        return value <= self.value if self.reached_when == "below" else value >= self.value
 
     def to_json(self) -> dict:
-        return {"metric": self.metric, "value": self.value, "mode": self.mode}
+        return {"metric": self.metric, "value": self.value, "reached_when": self.reached_when}
 
 
 @dataclass(frozen=True)
 class Plan:
-    mode: str
-    target: Target
+    grow: str
+    goal: Goal
     check_every: int
     rungs: list[Rung]
 
@@ -66,20 +66,20 @@ def _whole(node, key: str, allow_none: bool = False) -> int | None:
     value = node.get(key)
     if value is None and allow_none:
         return None
-    if not isinstance(value, int) or isinstance(value, bool) or value < 1:
+    if not is_whole(value) or value < 1:
         raise ConfigError(f"ladder.{key}", "must be a positive whole number" + (" or null" if allow_none else ""), value)
     return value
 
 
-def read_target(node) -> Target:
-    metric, value, mode = node.get("metric"), node.get("value"), node.get("mode")
+def read_goal(node) -> Goal:
+    metric, value, reached_when = node.metric, node.value, node.reached_when
     if not isinstance(metric, str) or not metric:
-        raise ConfigError("ladder.target.metric", f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}", metric)
-    if value is not None and (not isinstance(value, (int, float)) or isinstance(value, bool) or not math.isfinite(value)):
-        raise ConfigError("ladder.target.value", "must be a finite number or null", value)
-    if mode not in ("below", "above"):
-        raise ConfigError("ladder.target.mode", "must be below or above", mode)
-    return Target(metric, None if value is None else float(value), mode)
+        raise ConfigError("ladder.goal.metric", f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}", metric)
+    if value is not None and (not is_number(value) or not math.isfinite(value)):
+        raise ConfigError("ladder.goal.value", "must be a finite number or null", value)
+    if reached_when not in ("below", "above"):
+        raise ConfigError("ladder.goal.reached_when", "must be below or above", reached_when)
+    return Goal(metric, None if value is None else float(value), reached_when)
 
 
 def batches_of(cfg) -> list[int]:
@@ -87,7 +87,7 @@ def batches_of(cfg) -> list[int]:
     node = cfg.ladder
     if node.get("batches") is not None:
         batches = list(node.batches)
-        if not batches or any(not isinstance(b, int) or isinstance(b, bool) or b < 1 for b in batches):
+        if not batches or any(not is_whole(b) or b < 1 for b in batches):
             raise ConfigError("ladder.batches", "must be a non-empty list of positive whole numbers", batches)
         if len(set(batches)) != len(batches):
             raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
@@ -96,14 +96,14 @@ def batches_of(cfg) -> list[int]:
     return [Layout.from_config(cfg.layout).global_batch * 2**i for i in range(count)]
 
 
-def layout_of(cfg, mode: str, batch: int) -> tuple[int, int]:
+def layout_of(cfg, grow: str, batch: int) -> tuple[int, int]:
     """(workers, accum) of the rung at global batch `batch`."""
     L = cfg.layout
-    fixed = L.micro_batch * L.accum if mode == "workers" else L.workers * L.micro_batch
+    fixed = L.micro_batch * L.accum if grow == "workers" else L.workers * L.micro_batch
     if batch % fixed:
-        what = "layout.micro_batch·layout.accum" if mode == "workers" else "layout.workers·layout.micro_batch"
-        raise ConfigError("ladder.batches", f"every batch must be a multiple of {what}={fixed} in mode={mode}", batch)
-    return (batch // fixed, L.accum) if mode == "workers" else (L.workers, batch // fixed)
+        what = "layout.micro_batch·layout.accum" if grow == "workers" else "layout.workers·layout.micro_batch"
+        raise ConfigError("ladder.batches", f"every batch must be a multiple of {what}={fixed} with ladder.grow={grow}", batch)
+    return (batch // fixed, L.accum) if grow == "workers" else (L.workers, batch // fixed)
 
 
 def steps_of(cfg, batch: int) -> int:
@@ -134,9 +134,9 @@ def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = N
 def plan_ladder(cfg) -> Plan:
     """Check the ladder and every rung's run config; raise ConfigError naming the key."""
     node = cfg.ladder
-    if node.get("mode") not in MODES:
-        raise ConfigError("ladder.mode", f"must be one of {', '.join(MODES)}", node.get("mode"))
-    target = read_target(node.target)
+    if node.grow not in GROWTHS:
+        raise ConfigError("ladder.grow", f"must be one of {', '.join(GROWTHS)}", node.grow)
+    goal = read_goal(node.goal)
     check_every = _whole(node, "check_every")
     parallel = _whole(node, "parallel")
     if parallel > (os.cpu_count() or 1):
@@ -147,15 +147,15 @@ def plan_ladder(cfg) -> Plan:
                           f"processes; at most {PROCS_PER_CORE * (os.cpu_count() or 1)} on these {os.cpu_count()} cores", parallel)
     rungs = []
     for batch in batches_of(cfg):
-        workers, accum = layout_of(cfg, node.mode, batch)
+        workers, accum = layout_of(cfg, node.grow, batch)
         rung = Rung(batch, workers, accum, steps_of(cfg, batch))
         try:
             validate_run(rung_config(cfg, rung))
         except ConfigError as err:
-            rule = f"{err.rule} — at rung B={batch}, where mode={node.mode} gives W={workers}, k={accum}, {rung.steps} steps"
+            rule = f"{err.rule} — at rung B={batch}, where grow={node.grow} gives W={workers}, k={accum}, {rung.steps} steps"
             raise ConfigError(err.key, rule, err.value) from None
         rungs.append(rung)
-    return Plan(node.mode, target, check_every, rungs)
+    return Plan(node.grow, goal, check_every, rungs)
 
 
 @dataclass
@@ -168,7 +168,7 @@ class Watch:
     checked value and may return True to stop the run (a pruner's verdict).
     """
 
-    target: Target
+    goal: Goal
     check_every: int
     explode: float | None = None
     report: object = None
@@ -189,11 +189,11 @@ class Watch:
             return True
         if step % self.check_every and step != trainer.cfg.train.steps:
             return False
-        self.metric = loss if self.target.metric == TRAIN_LOSS else self._evaluate(trainer)
+        self.metric = loss if self.goal.metric == TRAIN_LOSS else self._evaluate(trainer)
         if not math.isfinite(self.metric):
-            self.diverged = f"{self.target.metric} is {self.metric} at step {step}"
+            self.diverged = f"{self.goal.metric} is {self.metric} at step {step}"
             return True
-        if self.target.met(self.metric):
+        if self.goal.met(self.metric):
             self.reached_step = step
             return True
         if self.report is not None and self.report(step, self.metric):
@@ -203,7 +203,7 @@ class Watch:
 
     def _evaluate(self, trainer) -> float:
         metrics = trainer.evaluate()
-        if self.target.metric not in metrics:
+        if self.goal.metric not in metrics:
             known = ", ".join([*metrics, TRAIN_LOSS])
-            raise ConfigError("ladder.target.metric", f"the task {trainer.task.name} reports {known}", self.target.metric)
-        return metrics[self.target.metric]
+            raise ConfigError("ladder.goal.metric", f"the task {trainer.task.name} reports {known}", self.goal.metric)
+        return metrics[self.goal.metric]

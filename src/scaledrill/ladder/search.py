@@ -28,7 +28,7 @@ from dataclasses import asdict, dataclass, field
 import optuna
 
 from scaledrill.dist import LocalCollective
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.ladder.rungs import Plan, Rung, Watch, rung_config
 
 PRUNERS = ("halving", "hyperband")
@@ -96,8 +96,7 @@ class SearchSettings:
             value = node.get(key)
             if value is None and allow_none:
                 return None
-            ok = isinstance(value, int) if whole else isinstance(value, (int, float))
-            if not ok or isinstance(value, bool) or value <= 0:
+            if not (is_whole(value) if whole else is_number(value)) or value <= 0:
                 raise ConfigError(f"ladder.search.{key}", f"must be a positive {'whole ' if whole else ''}number", value)
             return value
 
@@ -106,14 +105,14 @@ class SearchSettings:
         lo, hi = positive("lo"), positive("hi")
         if lo >= hi:
             raise ConfigError("ladder.search.hi", f"must exceed ladder.search.lo={lo}", hi)
-        warmup = node.get("warmup_max", 0)
-        if not isinstance(warmup, int) or isinstance(warmup, bool) or warmup < 0:
+        warmup = node.warmup_max
+        if not is_whole(warmup) or warmup < 0:
             raise ConfigError("ladder.search.warmup_max", "must be a whole number >= 0", warmup)
         reduction = positive("reduction", whole=True)
         if reduction < 2:
             raise ConfigError("ladder.search.reduction", "must be at least 2", reduction)
-        seed = node.get("seed", 0)
-        if not isinstance(seed, int) or isinstance(seed, bool):
+        seed = node.seed
+        if not is_whole(seed):
             raise ConfigError("ladder.search.seed", "must be a whole number", seed)
         return cls(
             trials=positive("trials", whole=True), pruner=node.pruner, reduction=reduction,
@@ -144,7 +143,7 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
             trial.report(value, step)
             return trial.should_prune()
 
-        watch = Watch(plan.target, plan.check_every, explode=settings.explode, report=report)
+        watch = Watch(plan.goal, plan.check_every, explode=settings.explode, report=report)
         summary = run_training(rung_config(cfg, rung, lr=rate, warmup=warmup, local=True), LocalCollective(), on_step=watch)
         record.steps, record.metric = summary["steps"], watch.metric
         record.reached = watch.reached_step is not None
@@ -156,7 +155,7 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
     study = optuna.create_study(
-        direction="minimize" if plan.target.mode == "below" else "maximize",
+        direction="minimize" if plan.goal.reached_when == "below" else "maximize",
         sampler=optuna.samplers.TPESampler(seed=settings.seed),
         pruner=settings.pruner_for(rung.steps),
     )

@@ -42,9 +42,9 @@ def _g(value, fmt: str = ".4g") -> str:
 
 
 def render_ladder(payload: dict) -> Table:
-    t = payload["target"]
-    goal = "no target" if t["value"] is None else f"{t['metric']} {t['mode']} {t['value']:g}"
-    table = Table(title=f"ladder (mode={payload['mode']}, {goal})")
+    g = payload["goal"]
+    goal = "no target" if g["value"] is None else f"{g['metric']} {g['reached_when']} {g['value']:g}"
+    table = Table(title=f"ladder (grow={payload['grow']}, {goal})")
     for col in ("B", "W·b·k", "lr", "steps", "samples", "final", "diverged", "noise scale", "regime", "wall s"):
         table.add_column(col, justify="right")
     for r in payload["rungs"]:

@@ -17,10 +17,11 @@ import torch
 from omegaconf import ListConfig
 from torch.nn import Parameter
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number
 from scaledrill.optim.groups import param_groups
 from scaledrill.optim.lamb import LAMB
 from scaledrill.optim.lars import LARS
+from scaledrill.optim.settings import settings_of
 
 OPTIMIZERS = ("sgd", "adamw", "lars", "lamb")
 DECAY = {"sgd": ("coupled",), "adamw": ("decoupled", "coupled"), "lars": ("coupled",), "lamb": ("decoupled", "coupled")}
@@ -33,19 +34,20 @@ def decay_of(node) -> str:
 
 def build_optimizer(named_params: list[tuple[str, Parameter]], node) -> torch.optim.Optimizer:
     """The optimizer of the `optim` config group over `named_params`."""
+    node = settings_of(node)  # the keys not given take their optimizer's defaults
     validate_optim(node)
-    groups = param_groups(named_params, float(node.get("weight_decay", 0.0)), node.get("exclude"))
+    groups = param_groups(named_params, float(node.weight_decay), node.exclude)
     lr, name = float(node.lr), node.name
     if name == "sgd":
-        return torch.optim.SGD(groups, lr=lr, momentum=node.get("momentum", 0.0), nesterov=bool(node.get("nesterov", False)))
+        return torch.optim.SGD(groups, lr=lr, momentum=node.momentum, nesterov=bool(node.nesterov))
     if name == "adamw":
         return torch.optim.Adam(groups, lr=lr, betas=tuple(node.betas), eps=node.eps,
                                 decoupled_weight_decay=decay_of(node) == "decoupled")
     if name == "lars":
-        return LARS(groups, lr=lr, momentum=node.get("momentum", 0.9), trust_coefficient=node.trust_coefficient,
-                    trust_clip=node.get("trust_clip"), denominator=node.get("denominator", "grad"))
+        return LARS(groups, lr=lr, momentum=node.momentum, trust_coefficient=node.trust_coefficient,
+                    trust_cap=node.trust_cap, denominator=node.denominator)
     return LAMB(groups, lr=lr, betas=tuple(node.betas), eps=node.eps, decay=decay_of(node),
-                bias_correction=bool(node.get("bias_correction", True)), trust_clip=node.get("trust_clip"))
+                bias_correction=bool(node.bias_correction), trust_cap=node.trust_cap)
 
 
 def set_lr(optimizer: torch.optim.Optimizer, lr: float) -> None:
@@ -60,8 +62,8 @@ def validate_optim(node) -> None:
     if name not in OPTIMIZERS:
         raise ConfigError("optim.name", f"must be one of {', '.join(OPTIMIZERS)}", name)
     _check(node, "lr", lambda x: x > 0, "must be a positive number")
-    _check(node, "weight_decay", lambda x: x >= 0, "must be a number >= 0", default=0.0)
-    _check(node, "clip_norm", lambda x: x > 0, "must be a positive number, or null for no clipping", default=None)
+    _check(node, "weight_decay", lambda x: x >= 0, "must be a number >= 0")
+    _check(node, "clip_norm", lambda x: x > 0, "must be a positive number, or null for no clipping", optional=True)
     decay = decay_of(node)
     if decay not in DECAY[name]:
         raise ConfigError("optim.decay", f"{name} supports {' or '.join(DECAY[name])} weight decay", decay)
@@ -69,32 +71,28 @@ def validate_optim(node) -> None:
     if exclude is not None and not (_is_list(exclude) and all(isinstance(p, str) for p in exclude)):
         raise ConfigError("optim.exclude", "must be null (parameters with <= 1 dimension) or a list of name patterns", exclude)
     if name in ("sgd", "lars"):
-        _check(node, "momentum", lambda x: 0 <= x < 1, "must be in [0, 1)", default=0.0)
+        _check(node, "momentum", lambda x: 0 <= x < 1, "must be in [0, 1)")
     if name == "sgd" and node.get("nesterov") and not node.get("momentum"):
         raise ConfigError("optim.nesterov", "needs optim.momentum > 0", node.nesterov)
     if name in ("adamw", "lamb"):
         betas = node.get("betas")
-        if not (_is_list(betas) and len(betas) == 2 and all(_number(b) and 0 <= b < 1 for b in betas)):
+        if not (_is_list(betas) and len(betas) == 2 and all(is_number(b) and 0 <= b < 1 for b in betas)):
             raise ConfigError("optim.betas", "must be two numbers in [0, 1)", betas)
         _check(node, "eps", lambda x: x >= 0, "must be a number >= 0")
     if name in ("lars", "lamb"):
-        _check(node, "trust_clip", lambda x: x > 0, "must be a positive number, or null for no cap", default=None)
+        _check(node, "trust_cap", lambda x: x > 0, "must be a positive number, or null for no cap", optional=True)
     if name == "lars":
         _check(node, "trust_coefficient", lambda x: x > 0, "must be a positive number")
-        if node.get("denominator", "grad") not in ("grad", "update"):
+        if node.get("denominator") not in ("grad", "update"):
             raise ConfigError("optim.denominator", "must be grad (‖g‖ + β‖w‖) or update (‖g + βw‖)", node.denominator)
 
 
-def _check(node, key: str, ok, rule: str, default=...) -> None:
-    value = node.get(key) if default is ... else node.get(key, default)
-    if value is None and default is None:
+def _check(node, key: str, ok, rule: str, optional: bool = False) -> None:
+    value = node.get(key)
+    if value is None and optional:
         return
-    if not _number(value) or not ok(value):
+    if not is_number(value) or not ok(value):
         raise ConfigError(f"optim.{key}", rule, value)
-
-
-def _number(value) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
 
 
 def _is_list(value) -> bool:

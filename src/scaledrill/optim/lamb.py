@@ -12,13 +12,13 @@ Per parameter tensor w with gradient g, at step t (from 1), each step:
 3. m̂ = m / (1 − β1^t);  v̂ = v / (1 − β2^t)   only with `bias_correction: true`
 4. r = m̂ / (√v̂ + ε)
 5. u = r + λ·w                              only with `decay: decoupled` (the paper's form)
-6. ρ = ‖w‖ / ‖u‖; ρ = 1 when a norm is 0; ρ = min(ρ, trust_clip) when set;
+6. ρ = ‖w‖ / ‖u‖; ρ = 1 when a norm is 0; ρ = min(ρ, trust_cap) when set;
    ρ = 1 for excluded parameters (biases, norm scales: see groups.py)
 7. w = w − lr·ρ·u
 
 Tuning: ε 1e-6 (larger than Adam's 1e-8, as optax.lamb's default); weight decay
 0.01 (common practice); warmup is still needed. Versions of the paper differ on bias
-correction, hence the flag. The paper's φ clips ‖w‖; `trust_clip` instead caps
+correction, hence the flag. The paper's φ clips ‖w‖; `trust_cap` instead caps
 the ratio, which is what bounds the step. `trust_ratios` holds ρ of the last step
 for each adapted parameter, by name.
 """
@@ -48,11 +48,11 @@ class LAMB(torch.optim.Optimizer):
     """LAMB over parameter groups from `groups.param_groups` (each with `param_names` and `adapt`)."""
 
     def __init__(self, groups, lr: float, betas=(0.9, 0.999), eps: float = 1e-6, weight_decay: float = 0.0,
-                 decay: str = "decoupled", bias_correction: bool = True, trust_clip: float | None = None):
+                 decay: str = "decoupled", bias_correction: bool = True, trust_cap: float | None = None):
         if decay not in ("coupled", "decoupled"):
             raise ValueError(f"decay must be coupled or decoupled, got {decay!r}")
         defaults = dict(lr=lr, betas=tuple(betas), eps=eps, weight_decay=weight_decay, adapt=True,
-                        decay=decay, bias_correction=bias_correction, trust_clip=trust_clip)
+                        decay=decay, bias_correction=bias_correction, trust_cap=trust_cap)
         super().__init__(groups, defaults)
         self.trust_ratios: dict[str, float] = {}
 
@@ -74,7 +74,7 @@ class LAMB(torch.optim.Optimizer):
                 u = adam_direction(m, v, group["betas"], state["step"], group["eps"], group["bias_correction"])  # 3-4
                 if not coupled:
                     u.add_(w, alpha=lam)  # 5
-                rho = safe_ratio(norm(w), norm(u), group["trust_clip"]) if group["adapt"] else 1.0  # 6
+                rho = safe_ratio(norm(w), norm(u), group["trust_cap"]) if group["adapt"] else 1.0  # 6
                 if group["adapt"]:
                     self.trust_ratios[name] = rho
                 w.add_(u, alpha=-group["lr"] * rho)  # 7

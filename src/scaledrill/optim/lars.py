@@ -9,7 +9,7 @@ Per parameter tensor w with gradient g, each step:
 1. u = g + β·w                                  weight decay β (coupled, as in the paper)
 2. ρ = η·‖w‖ / (‖g‖ + β·‖w‖)                    `denominator: grad`, the paper's form
    ρ = η·‖w‖ / ‖g + β·w‖                        `denominator: update`, as optax.lars
-   ρ = 1 when ‖w‖ or the denominator is 0; ρ = min(ρ, trust_clip) when set;
+   ρ = 1 when ‖w‖ or the denominator is 0; ρ = min(ρ, trust_cap) when set;
    ρ = 1 for excluded parameters (biases, norm scales: see groups.py)
 3. u = lr · ρ · u                               the global rate of the schedule
 4. v = μ·v + u                                  momentum μ
@@ -17,7 +17,7 @@ Per parameter tensor w with gradient g, each step:
 
 Tuning: η (`trust_coefficient`) 0.001 in the paper; then the global lr is much
 larger than for plain SGD (it multiplies η·‖w‖/‖g‖), and still needs warmup.
-`trust_clip` caps ρ for layers whose gradients vanish. `trust_ratios` holds ρ of
+`trust_cap` caps ρ for layers whose gradients vanish. `trust_ratios` holds ρ of
 the last step for each adapted parameter, by name, for the telemetry.
 """
 
@@ -47,11 +47,11 @@ class LARS(torch.optim.Optimizer):
     """LARS over parameter groups from `groups.param_groups` (each with `param_names` and `adapt`)."""
 
     def __init__(self, groups, lr: float, momentum: float = 0.9, weight_decay: float = 0.0,
-                 trust_coefficient: float = 0.001, trust_clip: float | None = None, denominator: str = "grad"):
+                 trust_coefficient: float = 0.001, trust_cap: float | None = None, denominator: str = "grad"):
         if denominator not in ("grad", "update"):
             raise ValueError(f"denominator must be grad or update, got {denominator!r}")
         defaults = dict(lr=lr, momentum=momentum, weight_decay=weight_decay, adapt=True,
-                        trust_coefficient=trust_coefficient, trust_clip=trust_clip, denominator=denominator)
+                        trust_coefficient=trust_coefficient, trust_cap=trust_cap, denominator=denominator)
         super().__init__(groups, defaults)
         self.trust_ratios: dict[str, float] = {}
 
@@ -61,7 +61,7 @@ class LARS(torch.optim.Optimizer):
             return 1.0
         w_norm, beta = norm(w), group["weight_decay"]
         denominator = norm(g) + beta * w_norm if group["denominator"] == "grad" else norm(u)
-        return safe_ratio(group["trust_coefficient"] * w_norm, denominator, group["trust_clip"])
+        return safe_ratio(group["trust_coefficient"] * w_norm, denominator, group["trust_cap"])
 
     @torch.no_grad()
     def step(self, closure=None):

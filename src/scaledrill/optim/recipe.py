@@ -100,10 +100,10 @@ def resolve_recipe(cfg, layout, dataset_size: int | None, tail: str) -> Recipe:
         base_batch=base_batch,
         exponent=exponent,
         optimizer=o.name,
-        weight_decay=float(o.get("weight_decay", 0.0)),
+        weight_decay=float(o.weight_decay),
         decay=decay_of(o),
-        clip_norm=o.get("clip_norm"),
-        exclusions=describe_exclusions(o.get("exclude")),
+        clip_norm=o.clip_norm,
+        exclusions=describe_exclusions(o.exclude),
         schedule=schedule,
         layout=layout.describe(),
     )

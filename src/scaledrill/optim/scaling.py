@@ -18,7 +18,7 @@ per-worker batch.
 
 from omegaconf import OmegaConf
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 
 RULES = ("none", "linear", "sqrt", "power")
 
@@ -37,18 +37,14 @@ def validate_scaling(node) -> None:
     if node.rule not in RULES:
         raise ConfigError("scaling.rule", f"must be one of {', '.join(RULES)}", node.rule)
     base_lr = node.base_lr
-    if not _number(base_lr) or base_lr <= 0:
+    if not is_number(base_lr) or base_lr <= 0:
         raise ConfigError("scaling.base_lr", "must be a positive number", base_lr)
     if node.rule == "none":
         return
     if OmegaConf.is_missing(node, "base_batch") or node.base_batch is None:
         raise ConfigError("scaling.base_batch", f"rule {node.rule} needs the global batch the base lr was tuned at")
     base_batch = node.base_batch
-    if not isinstance(base_batch, int) or isinstance(base_batch, bool) or base_batch <= 0:
+    if not is_whole(base_batch) or base_batch <= 0:
         raise ConfigError("scaling.base_batch", "must be a positive whole number", base_batch)
-    if node.rule == "power" and not _number(node.exponent):
+    if node.rule == "power" and not is_number(node.exponent):
         raise ConfigError("scaling.exponent", "must be a number", node.exponent)
-
-
-def _number(value) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)

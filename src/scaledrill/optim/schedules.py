@@ -22,7 +22,7 @@ from 0.
 import math
 from dataclasses import dataclass
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 
 SHAPES = ("constant", "cosine", "polynomial", "step")
 
@@ -93,22 +93,21 @@ def warmup_steps_of(node, steps_per_epoch: float | None) -> int:
 def milestones_of(node, total_steps: int) -> tuple[int, ...]:
     """Milestones as step numbers: whole numbers are steps, numbers in (0, 1) fractions of training."""
     values = list(node.get("milestones") or [])
-    if all(isinstance(m, int) and not isinstance(m, bool) for m in values):
+    if all(is_whole(m) for m in values):
         return tuple(sorted(values))
     return tuple(sorted(round(m * total_steps) for m in values))
 
 
 def build_schedule(node, total_steps: int, steps_per_epoch: float | None) -> Schedule:
     """The `schedule` config group resolved against the run length."""
+    own = {"cosine": ("final_factor",), "polynomial": ("final_factor", "power"), "step": ("gamma",)}  # a shape's own keys
     return Schedule(
         shape=node.name,
         warmup_steps=warmup_steps_of(node, steps_per_epoch),
-        warmup_start=float(node.get("warmup_start", 0.0)),
+        warmup_start=float(node.warmup_start),
         total_steps=total_steps,
-        final_factor=float(node.get("final_factor", 0.0)),
-        power=float(node.get("power", 1.0)),
         milestones=milestones_of(node, total_steps) if node.name == "step" else (),
-        gamma=float(node.get("gamma", 0.1)),
+        **{key: float(node[key]) for key in own.get(node.name, ())},
     )
 
 
@@ -121,21 +120,21 @@ def validate_schedule(node, total_steps: int) -> None:
     if epochs is not None:
         if steps:
             raise ConfigError("schedule.warmup_epochs", "set warmup_steps or warmup_epochs, not both", epochs)
-        _check(node, "warmup_epochs", _number(epochs) and epochs >= 0, "must be a number >= 0")
+        _check(node, "warmup_epochs", is_number(epochs) and epochs >= 0, "must be a number >= 0")
     elif steps is not None:
-        _check(node, "warmup_steps", _whole(steps) and steps >= 0, "must be a whole number >= 0")
+        _check(node, "warmup_steps", is_whole(steps) and steps >= 0, "must be a whole number >= 0")
         check_warmup(steps, total_steps)
-    start = node.get("warmup_start", 0.0)
-    _check(node, "warmup_start", _number(start) and 0 <= start <= 1, "must be a fraction of the peak rate in [0, 1]")
+    start = node.get("warmup_start")
+    _check(node, "warmup_start", is_number(start) and 0 <= start <= 1, "must be a fraction of the peak rate in [0, 1]")
     if name in ("cosine", "polynomial"):
-        f = node.get("final_factor", 0.0)
-        _check(node, "final_factor", _number(f) and 0 <= f <= 1, "must be a fraction of the peak rate in [0, 1]")
+        f = node.get("final_factor")
+        _check(node, "final_factor", is_number(f) and 0 <= f <= 1, "must be a fraction of the peak rate in [0, 1]")
     if name == "polynomial":
-        p = node.get("power", 1.0)
-        _check(node, "power", _number(p) and p > 0, "must be a positive number")
+        p = node.get("power")
+        _check(node, "power", is_number(p) and p > 0, "must be a positive number")
     if name == "step":
-        g = node.get("gamma", 0.1)
-        _check(node, "gamma", _number(g) and 0 < g <= 1, "must be a factor in (0, 1]")
+        g = node.get("gamma")
+        _check(node, "gamma", is_number(g) and 0 < g <= 1, "must be a factor in (0, 1]")
         _check_milestones(node.get("milestones"), total_steps)
 
 
@@ -147,8 +146,8 @@ def check_warmup(warmup_steps: int, total_steps: int, key: str = "schedule.warmu
 
 def _check_milestones(values, total_steps: int) -> None:
     values = list(values or [])
-    whole = all(_whole(m) for m in values)
-    fractions = all(_number(m) and not _whole(m) and 0 < m < 1 for m in values)
+    whole = all(is_whole(m) for m in values)
+    fractions = all(is_number(m) and not is_whole(m) and 0 < m < 1 for m in values)
     if not (whole or fractions):
         raise ConfigError("schedule.milestones", "must be all step numbers or all fractions in (0, 1)", values)
     if whole and any(m < 0 or m > total_steps for m in values):
@@ -158,11 +157,3 @@ def _check_milestones(values, total_steps: int) -> None:
 def _check(node, key: str, ok: bool, rule: str) -> None:
     if not ok:
         raise ConfigError(f"schedule.{key}", rule, node.get(key))
-
-
-def _number(value) -> bool:
-    return isinstance(value, (int, float)) and not isinstance(value, bool)
-
-
-def _whole(value) -> bool:
-    return isinstance(value, int) and not isinstance(value, bool)

@@ -29,6 +29,7 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
+from scaledrill.config.keys import composition_error, refuse_unknown
 from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides
 from scaledrill.errors import CheckpointError, ConfigError
 from scaledrill.layout import Layout
@@ -84,8 +85,11 @@ def compose_variants(saved: dict, where: str, ckpt: Path, steps: int, variants: 
         for name, extra in {"original": [], **variants}.items():
             try:
                 cfg = compose_run([*base, *extra, f"train.steps={steps}", f"resume={render_path(ckpt)}"])
-            except Exception as err:
-                raise ConfigError(f"replay.variants.{name}", f"cannot compose ({type(err).__name__}: {err})", extra) from None
+                refuse_unknown(cfg)
+            except ConfigError as err:
+                raise ConfigError(f"replay.variants.{name}", f"cannot compose: {err}", extra) from None
+            except Exception as err:  # Hydra's: an unknown key or option, a wrong type
+                raise ConfigError(f"replay.variants.{name}", f"cannot compose: {composition_error(err)}", extra) from None
             out[name] = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
     return out
 

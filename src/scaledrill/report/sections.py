@@ -140,7 +140,7 @@ def ladder_section(directory: Path, source: str) -> Section:
             "diverged", "wall_seconds")  # fmt: skip
     rows = [tuple(r.get(k) for k in keys) for r in rungs]
     classes = ["bad" if r[7] else "" for r in rows]  # diverged rungs
-    section.blocks.append(table(f"Rungs (mode: {doc.get('mode')})", headers, rows, classes))
+    section.blocks.append(table(f"Rungs (grow: {doc.get('grow')})", headers, rows, classes))
     if fit:
         section.blocks.append(key_values("Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)", fit))
     reached = sorted((r["global_batch"], r["steps_to_target"]) for r in rungs if r.get("steps_to_target"))

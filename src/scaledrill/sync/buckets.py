@@ -1,4 +1,4 @@
-"""Buckets: the flat vector travels in contiguous pieces of at most `sync.bucket_mib`.
+"""Buckets: the flat vector travels in contiguous pieces of at most `sync.bucket_kib`.
 
 Pieces follow the flat vector as it is (parameter order, not reversed, and not
 cut at parameter edges): the sync runs after the last backward of a step, so
@@ -18,18 +18,18 @@ loopback all-reduce.
 import torch
 
 
-def bounds(m: int, itemsize: int, bucket_mib: float) -> list[slice]:
-    """Contiguous slices of at most `bucket_mib` MiB covering range(m)."""
-    per = max(1, int(bucket_mib * 2**20) // itemsize)
+def bounds(m: int, itemsize: int, bucket_kib: float) -> list[slice]:
+    """Contiguous slices of at most `bucket_kib` KiB covering range(m)."""
+    per = max(1, int(bucket_kib * 2**10) // itemsize)
     return [slice(a, min(a + per, m)) for a in range(0, m, per)]
 
 
-def bucketed_sum(rows: torch.Tensor, collective, bucket_mib: float, in_place: bool = False) -> torch.Tensor:
+def bucketed_sum(rows: torch.Tensor, collective, bucket_kib: float, in_place: bool = False) -> torch.Tensor:
     """Σ over rows and over processes; identical on every process."""
     if rows.shape[0] > 1:  # 1.
         flat = rows.sum(dim=0)
     else:
         flat = rows[0] if in_place else rows[0].clone()
     if collective.size > 1:  # 2.
-        collective.all_reduce_many([flat[piece] for piece in bounds(flat.numel(), flat.element_size(), bucket_mib)])
+        collective.all_reduce_many([flat[piece] for piece in bounds(flat.numel(), flat.element_size(), bucket_kib)])
     return flat

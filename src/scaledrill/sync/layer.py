@@ -20,68 +20,45 @@ from dataclasses import fields, is_dataclass, replace
 
 import torch
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.sync.buckets import bucketed_sum
 from scaledrill.sync.compress import NAMES, Round, build, dense_bytes
 from scaledrill.sync.feedback import ErrorFeedback
 from scaledrill.sync.path import per_worker_cause
+from scaledrill.sync.settings import KEYS, settings_of
 from scaledrill.sync.tree import tree_sum
-
-DEFAULTS = {
-    "name": "exact",
-    "error_feedback": False,
-    "bucket_mib": 25.0,
-    "fidelity": True,
-    "fraction": 0.01,
-    "count": None,
-    "unbiased": True,
-    "levels": 16,
-    "rank": 1,
-    "start_step": 0,
-    "min_compression": 1.0,
-    "bitwise": False,
-}
-
-
-def _number(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool)
-
-
-def _whole(v) -> bool:
-    return isinstance(v, int) and not isinstance(v, bool)
 
 
 def validate(cfg) -> None:
-    """Raise ConfigError naming the first `sync.*` key that breaks its rule."""
+    """Raise ConfigError naming the first `sync.*` key that breaks its rule (keys not given are not checked)."""
     for key in cfg.keys():
-        if key not in DEFAULTS:
-            raise ConfigError(f"sync.{key}", f"unknown key; known: {', '.join(DEFAULTS)}", key)
-    get = lambda k: cfg.get(k, DEFAULTS[k])  # noqa: E731
-    rules = [
-        ("name", get("name") in NAMES, f"must be one of {', '.join(NAMES)}"),
-        ("error_feedback", isinstance(get("error_feedback"), bool), "must be true or false"),
-        ("fidelity", isinstance(get("fidelity"), bool), "must be true or false"),
-        ("bitwise", isinstance(get("bitwise"), bool), "must be true or false"),
-        ("unbiased", isinstance(get("unbiased"), bool), "must be true or false"),
-        ("bucket_mib", _number(get("bucket_mib")) and get("bucket_mib") > 0, "must be a number > 0"),
-        ("fraction", _number(get("fraction")) and 0 < get("fraction") <= 1, "must be in (0, 1]"),
-        ("count", get("count") is None or (_whole(get("count")) and get("count") >= 1), "must be null or a whole number >= 1"),
-        ("levels", _whole(get("levels")) and get("levels") >= 1, "must be a whole number >= 1"),
-        ("rank", _whole(get("rank")) and get("rank") >= 1, "must be a whole number >= 1"),
-        ("start_step", _whole(get("start_step")) and get("start_step") >= 0, "must be a whole number >= 0"),
-        ("min_compression", _number(get("min_compression")) and get("min_compression") > 0, "must be a number > 0"),
-    ]
-    for key, ok, rule in rules:
-        if not ok:
-            raise ConfigError(f"sync.{key}", rule, get(key))
+        if key not in KEYS:
+            raise ConfigError(f"sync.{key}", f"unknown key; known: {', '.join(KEYS)}", key)
+    rules = {
+        "name": (lambda v: v in NAMES, f"must be one of {', '.join(NAMES)}"),
+        "error_feedback": (lambda v: isinstance(v, bool), "must be true or false"),
+        "fidelity": (lambda v: isinstance(v, bool), "must be true or false"),
+        "bitwise": (lambda v: isinstance(v, bool), "must be true or false"),
+        "unbiased": (lambda v: isinstance(v, bool), "must be true or false"),
+        "bucket_kib": (lambda v: is_number(v) and v > 0, "must be a number > 0"),
+        "fraction": (lambda v: is_number(v) and 0 < v <= 1, "must be in (0, 1]"),
+        "count": (lambda v: v is None or (is_whole(v) and v >= 1), "must be null or a whole number >= 1"),
+        "levels": (lambda v: is_whole(v) and v >= 1, "must be a whole number >= 1"),
+        "rank": (lambda v: is_whole(v) and v >= 1, "must be a whole number >= 1"),
+        "exact_until": (lambda v: is_whole(v) and v >= 0, "must be a whole number >= 0"),
+        "min_saving": (lambda v: is_number(v) and v > 0, "must be a number > 0"),
+    }
+    for key, (ok, rule) in rules.items():
+        if key in cfg and not ok(cfg[key]):
+            raise ConfigError(f"sync.{key}", rule, cfg[key])
 
 
 class SyncLayer:
-    def __init__(self, compressor, layout, shapes, collective, seed, bucket_mib, fidelity, dtype, bitwise=False, per_worker=False):
+    def __init__(self, compressor, layout, shapes, collective, seed, bucket_kib, fidelity, dtype, bitwise=False, per_worker=False):
         self.compressor, self.layout, self.collective = compressor, layout, collective
         self.bitwise = bitwise
         self.per_worker = per_worker  # wants one row per hosted worker (path.py decides, from the config)
-        self.seed, self.bucket_mib, self.fidelity = seed, bucket_mib, fidelity
+        self.seed, self.bucket_kib, self.fidelity = seed, bucket_kib, fidelity
         self.n = sum(math.prod(s) for s in shapes)
         self.state = compressor.init(list(shapes), layout.per_proc, seed, dtype)
         self.calls = 0
@@ -93,8 +70,8 @@ class SyncLayer:
 
     def _sum(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         if self.bitwise:
-            return tree_sum(rows, self.collective, self.bucket_mib)
-        return bucketed_sum(rows, self.collective, self.bucket_mib, in_place)
+            return tree_sum(rows, self.collective, self.bucket_kib)
+        return bucketed_sum(rows, self.collective, self.bucket_kib, in_place)
 
     def _mean(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         return self._sum(rows, in_place).div_(self.layout.workers)
@@ -166,9 +143,9 @@ def _restore(state, d: dict, prefix: str = ""):
 def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = torch.float32) -> SyncLayer:
     """The sync layer that `cfg` (the `sync` node) describes, for this layout and model."""
     validate(cfg)
-    get = lambda k: cfg.get(k, DEFAULTS[k])  # noqa: E731
+    cfg = settings_of(cfg)  # the keys not given take their compressor's defaults
     compressor = build(cfg)
-    if get("error_feedback"):
+    if cfg.error_feedback:
         compressor = ErrorFeedback(compressor)
     per_worker = per_worker_cause(cfg) is not None
-    return SyncLayer(compressor, layout, shapes, collective, seed, float(get("bucket_mib")), get("fidelity"), dtype, get("bitwise"), per_worker)
+    return SyncLayer(compressor, layout, shapes, collective, seed, float(cfg.bucket_kib), cfg.fidelity, dtype, cfg.bitwise, per_worker)

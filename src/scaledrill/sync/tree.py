@@ -50,13 +50,13 @@ def pairwise_sum(rows: torch.Tensor) -> torch.Tensor:
     return rows[0].clone()
 
 
-def tree_sum(rows: torch.Tensor, collective, bucket_mib: float) -> torch.Tensor:
+def tree_sum(rows: torch.Tensor, collective, bucket_kib: float) -> torch.Tensor:
     """Σ over this process's rows and over all processes, along the global tree; identical everywhere."""
     local = pairwise_sum(rows)  # 1.
     if collective.size == 1:
         return local
     out = torch.empty_like(local)
-    for piece in bounds(local.numel(), local.element_size(), bucket_mib):
+    for piece in bounds(local.numel(), local.element_size(), bucket_kib):
         gathered = collective.all_gather(local[piece])  # 2. [P, m]
         out[piece] = pairwise_sum(gathered)  # 3.
     return out

@@ -24,7 +24,8 @@ import statistics
 from dataclasses import dataclass, field
 from typing import Protocol
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number, is_whole
+from scaledrill.telemetry.settings import DEFAULTS, DETECT_DEFAULTS
 
 MAD_TO_SIGMA = 1.4826  # 1 / Φ⁻¹(3/4): MAD of a Gaussian times this is its σ
 
@@ -128,15 +129,8 @@ class GradExplosion(_Trailing):
         return reason
 
 
-DETECT_DEFAULTS = {"nonfinite": True, "spike_z": 6.0, "spike_window": 50, "min_history": 20, "grad_factor": 10.0}
-
-
 def _is_number(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
-
-
-def _is_count(v) -> bool:
-    return isinstance(v, int) and not isinstance(v, bool)
+    return is_number(v) and math.isfinite(v)
 
 
 def _detect(cfg_telemetry) -> dict:
@@ -156,15 +150,15 @@ def validate_detect(cfg_telemetry) -> None:
         raise ConfigError("telemetry.detect.spike_z", "must be a positive number, or null to turn spikes off", d["spike_z"])
     if d["grad_factor"] is not None and not (_is_number(d["grad_factor"]) and d["grad_factor"] > 1):
         raise ConfigError("telemetry.detect.grad_factor", "must be a number above 1, or null to turn it off", d["grad_factor"])
-    if not (_is_count(d["min_history"]) and d["min_history"] >= 3):
+    if not (is_whole(d["min_history"]) and d["min_history"] >= 3):
         raise ConfigError("telemetry.detect.min_history", "must be a whole number of at least 3", d["min_history"])
-    if not (_is_count(d["spike_window"]) and d["spike_window"] >= d["min_history"]):
+    if not (is_whole(d["spike_window"]) and d["spike_window"] >= d["min_history"]):
         raise ConfigError(
             "telemetry.detect.spike_window",
             f"must be a whole number no smaller than telemetry.detect.min_history={d['min_history']}",
             d["spike_window"],
         )
-    on_trigger = cfg_telemetry.get("on_trigger", "stop")
+    on_trigger = cfg_telemetry.get("on_trigger", DEFAULTS.on_trigger)
     if on_trigger not in ("stop", "continue"):
         raise ConfigError("telemetry.on_trigger", "must be stop or continue", on_trigger)
 

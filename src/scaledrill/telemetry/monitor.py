@@ -58,10 +58,10 @@ class Monitor:
         self.cfg = tel
         self.run_dir = run_dir
         self.b_small, self.b_big = b_small, b_big
-        self.noise = NoiseScale(decay=tel.get("noise_decay", 0.95))
+        self.noise = NoiseScale(decay=tel.noise_decay)
         self.detectors = build_detectors(tel)
-        self.stop_on_trigger = tel.get("on_trigger", "stop") == "stop"
-        keep = (tel.get("incident") or {}).get("steps", 20)
+        self.stop_on_trigger = tel.on_trigger == "stop"
+        keep = tel.incident.steps
         self.layer_history: deque = deque(maxlen=max(keep, 50))
         self.scalar_history: deque = deque(maxlen=max(keep, 50))
         self.config_yaml = config_yaml
@@ -70,9 +70,9 @@ class Monitor:
         self.store = None
         self.events = None  # TensorBoard event files, when telemetry.tensorboard is on
         if rank == 0 and run_dir is not None:
-            self.store = RunStore(run_dir / "run.sqlite", flush_every=tel.get("flush_every", 50))
+            self.store = RunStore(run_dir / "run.sqlite", flush_every=tel.flush_every)
             self.store.start("run", config_yaml)
-            if tel.get("tensorboard", False):
+            if tel.tensorboard:
                 self.events = open_event_writer(run_dir / "tensorboard")
 
     def observe(self, record: StepRecord) -> str | None:
@@ -104,10 +104,10 @@ class Monitor:
         return reason if self.stop_on_trigger else None
 
     def _incident(self, step: int, reason: str) -> str:
-        incident = (self.cfg.get("incident") or {})
+        incident = self.cfg.incident
         path = write_incident(
             self.run_dir, step, reason, list(self.layer_history), list(self.scalar_history), self.config_yaml,
-            self.last_checkpoint, keep=incident.get("steps", 20), factor=incident.get("factor", 3.0),
+            self.last_checkpoint, keep=incident.steps, factor=incident.factor,
         )
         self.incidents.append(str(path))
         return str(path)

@@ -28,7 +28,7 @@ Tuning: `decay` trades lag for noise. 0.95 averages over ~20 steps; raise it
 import math
 from dataclasses import asdict, dataclass
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_number
 
 
 def estimate_g2(small_sq: float, b_small: float, big_sq: float, b_big: float) -> float:
@@ -53,7 +53,7 @@ class NoiseScale:
     skipped: int = 0  # steps with a non-finite input, left out of the averages
 
     def __post_init__(self):
-        if isinstance(self.decay, bool) or not isinstance(self.decay, (int, float)) or not 0.0 <= self.decay < 1.0:
+        if not is_number(self.decay) or not 0.0 <= self.decay < 1.0:
             raise ConfigError("telemetry.noise_decay", "must be a number in [0, 1)", self.decay)
 
     def update(self, small_sq: float, b_small: float, big_sq: float, b_big: float) -> float | None:

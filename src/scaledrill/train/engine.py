@@ -63,7 +63,7 @@ class Trainer:
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.path = grad_path(cfg.train.grads, cfg.sync)
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
-        self.batchnorm = cfg.train.get("batchnorm", "worker")
+        self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
             set_global_statistics(self.model, collective)  # the group is the process's V·b samples, summed over P
         # Averaged over processes every step (their tensors stay in place: restores and the vmap path copy into them).
@@ -72,7 +72,7 @@ class Trainer:
         self.step_index = 0
         # Read once: a config lookup costs tens of microseconds, several per step.
         tel = cfg.telemetry
-        self.noise_every, self.layer_every = tel.get("noise_every", 25), tel.get("layer_every", 10)
+        self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
         self.clip_norm = cfg.optim.clip_norm
 
     # -- one step ------------------------------------------------------------

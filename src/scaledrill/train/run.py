@@ -71,11 +71,11 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
     where = cfg.layout
     check_backend_available(layout.backend, where.get("mpiexec"))
     if layout.backend == "gloo":
-        check_port(where.get("address", "127.0.0.1"), where.get("port"))
+        check_port(where.address, where.port)
     prepare_run_dir(run_dir, cfg)
     print(layout.describe())
     if layout.backend == "local":
         return train_as_rank(cfg, run_dir, open_collective("local"))
-    launch(run_dir, layout.backend, layout.procs, address=where.get("address", "127.0.0.1"), port=where.get("port"),
+    launch(run_dir, layout.backend, layout.procs, address=where.address, port=where.port,
            mpiexec=where.get("mpiexec"))
     return json.loads((run_dir / "summary.json").read_text())

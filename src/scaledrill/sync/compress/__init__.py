@@ -90,22 +90,20 @@ def build(cfg) -> Compressor:
     from scaledrill.sync.compress.randk import RandK
     from scaledrill.sync.compress.sign import ScaledSign
     from scaledrill.sync.compress.topk import TopK
+    from scaledrill.sync.settings import settings_of
 
     makers = {
         "exact": lambda c: Exact(),
         "fp16": lambda c: Cast(Exact(), torch.float16),
         "bf16": lambda c: Cast(Exact(), torch.bfloat16),
-        "topk": lambda c: TopK(fraction=c.get("fraction", 0.01), count=c.get("count", None)),
-        "randk": lambda c: RandK(
-            fraction=c.get("fraction", 0.01), count=c.get("count", None), unbiased=c.get("unbiased", True)
-        ),
+        "topk": lambda c: TopK(fraction=c.fraction, count=c.count),
+        "randk": lambda c: RandK(fraction=c.fraction, count=c.count, unbiased=c.unbiased),
         "sign": lambda c: ScaledSign(),
-        "qsgd": lambda c: QSGD(levels=c.get("levels", 16)),
-        "powersgd": lambda c: PowerSGD(
-            rank=c.get("rank", 1), start_step=c.get("start_step", 0), min_compression=c.get("min_compression", 1.0)
-        ),
+        "qsgd": lambda c: QSGD(levels=c.levels),
+        "powersgd": lambda c: PowerSGD(rank=c.rank, exact_until=c.exact_until, min_saving=c.min_saving),
     }
-    return makers[cfg.get("name", "exact")](cfg)
+    cfg = settings_of(cfg)  # the keys not given take their compressor's defaults
+    return makers[cfg.name](cfg)
 
 
 NAMES = ("exact", "fp16", "bf16", "topk", "randk", "sign", "qsgd", "powersgd")

@@ -14,13 +14,13 @@ Steps, for every compressed matrix, with the W workers' M_w:
 3. Q_w = M_wᵀ P̂;                 average over workers (one all-reduce) -> Q;
 4. output P̂ Qᵀ (= the average of the workers' P̂ Q_wᵀ); keep Q for the next step.
 
-A 1-D parameter, or a matrix where r·(rows+cols)·`sync.min_compression` ≥
-rows·cols, travels uncompressed with the P factors. Before `sync.start_step` the
+A 1-D parameter, or a matrix where r·(rows+cols)·`sync.min_saving` ≥
+rows·cols, travels uncompressed with the P factors. Before `sync.exact_until` the
 gradient is averaged exactly (early training is sensitive to gradient error),
 as torch's PowerSGD hook does.
 
 Tuning: r = 1–4 (the paper's rank 2 matched full-precision SGD on
-ResNet-18/CIFAR-10, from memory); raise `start_step` before raising r.
+ResNet-18/CIFAR-10, from memory); raise `exact_until` before raising r.
 """
 
 import math
@@ -48,13 +48,13 @@ class Block:
         return self.rows * self.cols
 
 
-def plan(shapes: list[torch.Size], rank: int, min_compression: float) -> list[Block]:
+def plan(shapes: list[torch.Size], rank: int, min_saving: float) -> list[Block]:
     blocks, offset = [], 0
     for shape in shapes:
         numel = math.prod(shape)
         rows = shape[0] if len(shape) >= 2 else numel
         cols = numel // rows if len(shape) >= 2 else 1
-        pays = len(shape) >= 2 and rank * (rows + cols) * min_compression < numel
+        pays = len(shape) >= 2 and rank * (rows + cols) * min_saving < numel
         blocks.append(Block(offset, rows, cols, pays))
         offset += numel
     return blocks
@@ -64,19 +64,19 @@ class PowerSGD:
     per_worker = True
     lossless = False
 
-    def __init__(self, rank: int = 1, start_step: int = 0, min_compression: float = 1.0):
-        self.rank, self.start_step, self.min_compression = rank, start_step, min_compression
+    def __init__(self, rank: int = 1, exact_until: int = 0, min_saving: float = 1.0):
+        self.rank, self.exact_until, self.min_saving = rank, exact_until, min_saving
         self.blocks: list[Block] = []
 
     def init(self, shapes, V, seed, dtype):
-        self.blocks = plan(shapes, self.rank, self.min_compression)
+        self.blocks = plan(shapes, self.rank, self.min_saving)
         size = sum(b.cols * self.rank for b in self.blocks if b.compress)
         gen = torch.Generator().manual_seed(mix(seed, 0x505344))
         return PowerSGDState(torch.randn(size, generator=gen, dtype=dtype))
 
     def update(self, x, state, rnd):
         V, n = x.shape
-        if rnd.step < self.start_step:
+        if rnd.step < self.exact_until:
             return Out(rnd.mean(x), x, dense_bytes(n, x.dtype)), state
         r, packed = self.rank, [b for b in self.blocks if b.compress]
         plain = [x[:, b.offset : b.offset + b.numel] for b in self.blocks if not b.compress]

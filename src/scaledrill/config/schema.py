@@ -1,0 +1,124 @@
+"""The keys of a run, their types and defaults: one dataclass per config group.
+
+These dataclasses are the single source of every default (those of optim, sync and
+telemetry live beside their code, in <part>/settings.py, which fills them in for callers
+that pass only some keys); the YAML files in
+`scaledrill/conf` hold only what a preset changes (`defaults: [base_sgd, _self_]`
+takes the schema, then the file's own values). Hydra refuses a key a dataclass
+does not declare, so a misspelt key fails at composition (cli.py words the error);
+the project's own rules (ranges, one-of, divisibility) run from config/validate.py,
+which calls the `validate` of each part. Groups whose options carry different keys (optim,
+schedule, sync) get one dataclass per option, all from a shared base.
+"""
+
+from dataclasses import dataclass, field
+from typing import Any, Optional
+
+from omegaconf import MISSING
+
+from scaledrill.optim.settings import AdamwConfig, LambConfig, LarsConfig, SgdConfig
+from scaledrill.sync.settings import PowersgdConfig, QsgdConfig, RandkConfig, SignConfig, SyncConfig, TopkConfig
+from scaledrill.telemetry.settings import TelemetryConfig
+
+
+@dataclass
+class LayoutConfig:
+    """W simulated workers on P processes; global batch B = workers * micro_batch * accum."""
+
+    workers: int = 8
+    procs: int = 1
+    micro_batch: int = 16
+    accum: int = 1
+    backend: str = "local"  # local | gloo | mpi
+    address: str = "127.0.0.1"  # rendezvous address of the gloo processes; loopback unless you need another
+    port: Optional[int] = None  # rendezvous port; null = a free one
+    mpiexec: Optional[str] = None  # path of mpiexec for backend=mpi; null = the one beside this Python, then PATH
+
+
+@dataclass
+class TrainConfig:
+    steps: int = 200  # optimizer steps
+    seed: int = 0
+    eval_every: int = 50  # steps between evaluations; 0 = only at the end
+    tail: str = "drop"  # epoch tail that does not fill a global batch: drop | carry
+    checkpoint_every: int = 0  # steps between checkpoints; 0 = only at the end
+    grads: str = "auto"  # auto | fused | vmap | loop
+    dtype: str = "float32"  # float32 | float64
+    batchnorm: str = "worker"  # BatchNorm statistics per worker | global (all W·b samples of the micro-step; fused path only)
+    timeout_s: float = 60  # how long a collective waits for a peer before the run fails
+    progress: bool = True
+
+
+@dataclass
+class TaskConfig:
+    """A task is open: model, data and loss are `_target_` dicts of the user's own classes."""
+
+    name: str = "custom"
+    model: Any = MISSING
+    data: Any = MISSING
+    loss: Any = MISSING
+
+
+@dataclass
+class ScalingConfig:
+    rule: str = "none"  # none | linear | sqrt | power
+    base_batch: Optional[int] = None  # the global batch base_lr was tuned at
+    base_lr: float = "${optim.lr}"  # type: ignore[assignment]  (an interpolation until resolved)
+    exponent: float = 1.0
+
+
+@dataclass
+class ScheduleConfig:
+    name: str = "constant"
+    warmup_steps: int = 0  # or set warmup_epochs instead
+    warmup_epochs: Optional[float] = None
+    warmup_start: float = 0.0  # factor of the peak rate at step 0
+
+
+@dataclass
+class CosineConfig(ScheduleConfig):
+    name: str = "cosine"
+    final_factor: float = 0.0
+
+
+@dataclass
+class PolynomialConfig(CosineConfig):
+    name: str = "polynomial"
+    power: float = 2.0
+
+
+@dataclass
+class StepConfig(ScheduleConfig):
+    name: str = "step"
+    milestones: list[Any] = field(default_factory=lambda: [0.33, 0.67, 0.89])  # step numbers, or fractions of train.steps
+    gamma: float = 0.1
+
+
+@dataclass
+class RunConfig:
+    """The root of `scaledrill run` (and of every verb that trains: recipe, check, replay, ladder)."""
+
+    layout: Any = MISSING
+    task: Any = MISSING
+    optim: Any = MISSING
+    scaling: Any = MISSING
+    schedule: Any = MISSING
+    sync: Any = MISSING
+    telemetry: Any = MISSING
+    train: TrainConfig = field(default_factory=TrainConfig)
+    resume: Optional[str] = None  # path of a checkpoint to continue from
+    debug: bool = False  # show Python tracebacks on errors
+
+
+# group -> {name in the ConfigStore: dataclass}; a group's YAML option names one of these in its defaults list
+GROUPS = {
+    "layout": {"base_layout": LayoutConfig},
+    "task": {"base_task": TaskConfig},
+    "optim": {"base_sgd": SgdConfig, "base_adamw": AdamwConfig, "base_lamb": LambConfig, "base_lars": LarsConfig},
+    "scaling": {"base_scaling": ScalingConfig},
+    "schedule": {"base_constant": ScheduleConfig, "base_cosine": CosineConfig, "base_polynomial": PolynomialConfig,
+                 "base_step": StepConfig},
+    "sync": {"base_exact": SyncConfig, "base_sign": SignConfig, "base_topk": TopkConfig, "base_randk": RandkConfig,
+             "base_qsgd": QsgdConfig, "base_powersgd": PowersgdConfig},
+    "telemetry": {"base_telemetry": TelemetryConfig},
+}

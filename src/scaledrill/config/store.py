@@ -1,0 +1,31 @@
+"""Register the schemas (config/schema.py, config/verbs_schema.py) in Hydra's ConfigStore.
+
+Importing this module is enough: the CLI, replay's re-composition (config/overrides.py)
+and the tests import it before they compose. Each group's YAML options start from
+`base_<...>` of their group; the verbs' YAML roots start from `base_run` and their own.
+"""
+
+from hydra.core.config_store import ConfigStore
+from omegaconf import OmegaConf
+
+from scaledrill.config.schema import GROUPS, RunConfig, TaskConfig
+from scaledrill.config.verbs_schema import CheckRoot, ClusterConfig, ForecastRoot, LadderRoot, ReplayRoot, ReportRoot
+
+
+def register() -> None:
+    store = ConfigStore.instance()
+    for group, schemas in GROUPS.items():
+        for name, node in schemas.items():
+            if node is TaskConfig:  # stored untyped, so `~task.model` can swap in a model of the user's own
+                node = OmegaConf.to_container(OmegaConf.structured(TaskConfig))
+            store.store(group=group, name=name, node=node)
+    store.store(group="forecast", name="base_cluster", node=ClusterConfig)
+    store.store(name="base_run", node=RunConfig)
+    store.store(name="base_check", node=CheckRoot)  # a run's root and the verb's own keys
+    store.store(name="base_ladder", node=LadderRoot)
+    store.store(name="base_replay", node=ReplayRoot)
+    store.store(name="base_forecast", node=ForecastRoot)
+    store.store(name="base_report", node=ReportRoot)
+
+
+register()
