@@ -11,6 +11,7 @@ their protocols. Every process runs this same loop on its own workers.
 """
 
 import hashlib
+import signal
 import time
 from pathlib import Path
 
@@ -145,7 +146,7 @@ class Trainer:
         result = self.grads.compute(micro, scale, path)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
-        shared = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self.running_stats)
+        shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
         average = self.sync.reduce(result.local, self.workers, step, donate=True)
         scalars = shared()
@@ -181,6 +182,7 @@ class Trainer:
             trust=dict(trust) if trust and layers_due else None,
             sync=dict(self.sync.stats),
             interrupt=bool(scalars[2] > 0),
+            signum=(flag.signum if flag else 0) or _one_signal(float(scalars[2]), self.comm.size),
         )
 
     def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
@@ -254,6 +256,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                 if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
                     saved = checkpoint.save(trainer, monitor, ckpt_dir)
                     monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
+                    monitor.flush()  # the store holds every step up to the newest checkpoint, even after kill -9
                 if on_step is not None and on_step(trainer, record):
                     stopped_early = True  # the caller's goal (e.g. a ladder's target) is met
                 if record.interrupt:
@@ -261,7 +264,8 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                     monitor.close(status)
                     raise Interrupted(
                         f"stopped by a signal after step {trainer.step_index}; a checkpoint is in {ckpt_dir}; "
-                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)"
+                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)",
+                        record.signum,
                     )
                 if stopped is not None or stopped_early:
                     break
@@ -299,6 +303,14 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     summary.update(monitor.summary())
     summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
     return summary
+
+
+def _one_signal(total: float, procs: int) -> int:
+    """The signal behind a stop flag summed over the processes, when this process saw none itself."""
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        if total % int(signum) == 0 and 0 < total <= procs * int(signum):
+            return int(signum)
+    return int(signal.SIGINT)
 
 
 def config_yaml(cfg) -> str:

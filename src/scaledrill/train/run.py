@@ -77,5 +77,5 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
     if layout.backend == "local":
         return train_as_rank(cfg, run_dir, open_collective("local"))
     launch(run_dir, layout.backend, layout.procs, address=where.get("address", "127.0.0.1"), port=where.get("port"),
-           mpiexec=where.get("mpiexec"))
+           mpiexec=where.get("mpiexec"), timeout_s=cfg.train.timeout_s)
     return json.loads((run_dir / "summary.json").read_text())
