@@ -33,6 +33,7 @@ from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
 from scaledrill.train.grads import GradComputer, flatten_params, write_grads
+from scaledrill.train.memory import check_fits
 from scaledrill.train.signals import StopFlag
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
@@ -62,6 +63,7 @@ class Trainer:
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.path = self._choose_path(cfg.train.grads)
+        check_fits(self)  # before the first step allocates
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.get("batchnorm", "worker")
         if self.batchnorm == "global":
