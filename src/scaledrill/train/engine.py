@@ -256,9 +256,9 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                 if collective.rank == 0 and (last or (every and trainer.step_index % every == 0)):
                     evals[trainer.step_index] = trainer.evaluate()
                 if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
+                    monitor.flush()  # first: the store then holds every step the newest checkpoint covers, even after kill -9
                     saved = checkpoint.save(trainer, monitor, ckpt_dir)
                     monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
-                    monitor.flush()  # the store holds every step up to the newest checkpoint, even after kill -9
                 if on_step is not None and on_step(trainer, record):
                     stopped_early = True  # the caller's goal (e.g. a ladder's target) is met
                 if record.interrupt:
