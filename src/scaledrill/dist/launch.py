@@ -215,26 +215,38 @@ def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", 
         group.kill()  # nothing outlives the launcher
 
 
-def _first_report(run_dir: Path, procs: int, interrupts: bool) -> tuple[int, int, str] | None:
-    """(rank, status, message) of the earliest written report: a failure, or with `interrupts` a stop."""
-    found = []
-    for rank in range(procs):
-        report = read_error(run_dir, rank)
-        if report is not None and (report[0] in INTERRUPT_STATUSES) == interrupts:
-            found.append((error_file(run_dir, rank).stat().st_mtime, rank, *report))
-    return min(found)[1:] if found else None
+def _reports(run_dir: Path, procs: int) -> dict[int, tuple[int, str]]:
+    return {rank: report for rank in range(procs) if (report := read_error(run_dir, rank)) is not None}
 
 
-def _failure(group, run_dir: Path, procs: int) -> tuple | None:
-    """(rank, status, message) of a failed rank, or None while all is well."""
-    reported = _first_report(run_dir, procs, interrupts=False)
-    if reported is not None:
-        return reported
-    for rank, code in group.statuses().items():
-        if code not in (None, 0) and (code < 0 or code not in INTERRUPT_STATUSES):
-            time.sleep(0.2)  # a rank's own report may be on its way
-            return _first_report(run_dir, procs, interrupts=False) or (rank, -1, describe_status(code))
-    return None
+def _first_stop(run_dir: Path, procs: int) -> tuple[int, int, str] | None:
+    """(rank, status, message) of the first rank that reported stopping on a signal."""
+    stops = sorted((rank, *r) for rank, r in _reports(run_dir, procs).items() if r[0] in INTERRUPT_STATUSES)
+    return stops[0] if stops else None
+
+
+def _cause(group, run_dir: Path, procs: int) -> tuple | None:
+    """(rank, status, message) of the failure that ended the run, or None while all is well.
+
+    When one rank dies its peers fail too (a closed connection, a timeout), so the cause
+    is chosen by kind, not by who reported first: a rank killed by a signal or gone
+    without a word, then a rank's bad input, data or checkpoint, then the earliest report."""
+    def collect():
+        reports = {rank: r for rank, r in _reports(run_dir, procs).items() if r[0] not in INTERRUPT_STATUSES}
+        ended = {rank: code for rank, code in group.statuses().items()
+                 if code not in (None, 0) and code not in INTERRUPT_STATUSES and rank not in reports}
+        return reports, ended
+
+    reports, ended = collect()
+    if not reports and not ended:
+        return None
+    time.sleep(0.3)  # the rest of the story: the failed rank's own report, a dead peer's status
+    reports, ended = collect()
+    ranked = [(0, 0.0, rank, code, describe_status(code)) for rank, code in ended.items()]
+    for rank, (status, message) in reports.items():
+        kind = 0 if status > 128 else 1 if status in (2, 3, 4) else 2
+        ranked.append((kind, error_file(run_dir, rank).stat().st_mtime, rank, status, message))
+    return min(ranked, key=lambda c: c[:2])[2:]
 
 
 def _raise_failure(rank, status: int, message: str) -> None:
@@ -263,7 +275,7 @@ def _watch(group, run_dir: Path, procs: int, grace_s: float) -> None:
     previous = {sig: signal.signal(sig, forward) for sig in (signal.SIGINT, signal.SIGTERM)}
     try:
         while True:
-            failure = _failure(group, run_dir, procs)
+            failure = _cause(group, run_dir, procs)
             if failure is not None:
                 for pid in group.ranks().values():
                     send(pid, signal.SIGTERM)
@@ -277,6 +289,6 @@ def _watch(group, run_dir: Path, procs: int, grace_s: float) -> None:
     finally:
         for sig, handler in previous.items():
             signal.signal(sig, handler)
-    stopped = _first_report(run_dir, procs, interrupts=True)
+    stopped = _first_stop(run_dir, procs)
     if stopped is not None:
         raise Interrupted(stopped[2], caught[0] if caught else stopped[1] - 128)
