@@ -8,6 +8,7 @@ import signal
 import socket
 import sqlite3
 import textwrap
+import time
 
 import pytest
 import torch
@@ -182,6 +183,26 @@ def test_after_kill_9_the_store_matches_the_newest_checkpoint(tmp_path):
     run_cli("run", *common, f"train.steps={newest + 2}", f"resume={run_dir}", f"hydra.run.dir={run_dir}", check=True)
     with _store(run_dir) as conn:
         assert conn.execute("SELECT status FROM runs ORDER BY id").fetchall() == [("killed",), ("finished",)]
+
+
+def test_ranks_of_a_launcher_killed_with_kill_9_stop_with_a_checkpoint(tmp_path):
+    """The kernel sends the ranks SIGTERM when their launcher dies (prctl PR_SET_PDEATHSIG)."""
+    run_dir = tmp_path / "run"
+    proc = start(*LONG, *TWO["gloo"], f"hydra.run.dir={run_dir}")
+    wait_for(run_dir / "checkpoints" / "step-0000005.pt", proc)
+    proc.kill()
+    proc.communicate()
+    deadline = time.monotonic() + 120
+    while processes_of(run_dir):
+        assert time.monotonic() < deadline, "ranks outlived their launcher"
+        time.sleep(0.2)
+    stopped = _newest_step(run_dir)
+    reports = [json.loads(p.read_text()) for p in sorted(run_dir.glob(".rank*.error"))]
+    assert [r["status"] for r in reports] == [143, 143]
+    assert all(f"after step {stopped};" in r["message"] for r in reports)  # the same step on both ranks
+    with _store(run_dir) as conn:
+        assert conn.execute("SELECT status FROM runs").fetchall() == [("interrupted",)]
+        assert conn.execute("SELECT MAX(step) FROM scalars WHERE name = 'loss'").fetchone() == (stopped - 1,)
 
 
 def test_report_of_a_summary_that_is_a_list(tmp_path):

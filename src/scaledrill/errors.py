@@ -61,9 +61,10 @@ def error_for_status(status: int, message: str) -> ScaledrillError:
     so every backend ends a run with the same status as the local one."""
     if status in INTERRUPT_STATUSES:
         return Interrupted(message, status - 128)
-    for kind in (ConfigError, DataError, CheckpointError, WorkerFailed):
+    if status == ConfigError.exit_code:
+        key, _, rule = message.partition(": ")  # as ConfigError wrote it
+        return ConfigError(key, rule)
+    for kind in (DataError, CheckpointError):
         if kind.exit_code == status:
-            error = kind.__new__(kind)
-            Exception.__init__(error, message)
-            return error
+            return kind(message)
     return WorkerFailed(message)
