@@ -33,7 +33,7 @@ def _store(run_dir):
 
 
 def _newest_step(run_dir) -> int:
-    return torch.load(sorted((run_dir / "checkpoints").glob("step-*.pt"))[-1], weights_only=True)["step"]
+    return torch.load(max((run_dir / "checkpoints").glob("step-*.pt")), weights_only=True)["step"]
 
 
 @pytest.mark.parametrize("backend,sig", [("local", signal.SIGTERM), ("gloo", signal.SIGTERM), ("gloo", signal.SIGINT),

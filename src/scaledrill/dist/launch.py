@@ -12,10 +12,11 @@ ranks' transport is held to the loopback device. Either way every rank runs
 The watcher:
 - forwards SIGINT and SIGTERM to every rank, which all stop after the same step,
   checkpoint, and report the `resume=` command, shown here; a second signal kills;
-- when one rank fails (an error, a signal, a crash) stops the others within
-  `grace_s` seconds instead of letting them wait in a collective, and ends the
-  run with that rank's own status and message (2 bad input, 3 data, 4 checkpoint,
-  5 a rank that died), the same as the local backend would.
+- when one rank fails (an error, a signal, a crash) stops the others at once
+  (SIGTERM, then SIGKILL after `grace_s` seconds: a rank blocked in a collective
+  with the failed one cannot act on a signal) instead of letting them wait, and
+  ends the run with that rank's own status and message (2 bad input, 3 data,
+  4 checkpoint, 5 a rank that died), the same as the local backend would.
 """
 
 import ipaddress
@@ -25,6 +26,7 @@ import signal
 import socket
 import subprocess
 import sys
+import threading
 import time
 from pathlib import Path
 
@@ -197,7 +199,7 @@ def clear_reports(run_dir: Path) -> None:
         path.unlink(missing_ok=True)
 
 
-def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", grace_s: float = 10.0,
+def launch(run_dir: Path, backend: str, procs: int, address: str = "127.0.0.1", grace_s: float = 1.0,
            port: int | None = None, mpiexec: str | None = None, job: str | None = None, timeout_s: float = 60.0) -> None:
     """Run the P processes (`python -m scaledrill.dist.rank RUN_DIR JOB`, JOB by default a training run) to
     completion; raise the failing rank's own error, or WorkerFailed naming a rank that died."""
@@ -272,15 +274,17 @@ def _watch(group, run_dir: Path, procs: int, grace_s: float) -> None:
         caught.append(signum)
         tell_ranks()
 
-    previous = {sig: signal.signal(sig, forward) for sig in (signal.SIGINT, signal.SIGTERM)}
+    previous = {}
+    if threading.current_thread() is threading.main_thread():  # only there may Python handle signals
+        previous = {sig: signal.signal(sig, forward) for sig in (signal.SIGINT, signal.SIGTERM)}
     try:
         while True:
             failure = _cause(group, run_dir, procs)
             if failure is not None:
                 for pid in group.ranks().values():
                     send(pid, signal.SIGTERM)
-                group.wait(min(grace_s, 1.0))  # a rank blocked in a collective with the failed one cannot
-                _raise_failure(*failure)  # act on it; `finally` kills what is left (checkpoints are atomic)
+                group.wait(grace_s)
+                _raise_failure(*failure)  # `finally` kills what is left (checkpoints are written atomically)
             if all(code is not None for code in group.statuses().values()):
                 break
             if caught:

@@ -77,7 +77,7 @@ def check_fits(trainer) -> None:
         return
     try:
         data, activations = per_sample_bytes(trainer.model, trainer.task.data.train, trainer.dtype)
-    except Exception:  # the probe is a courtesy: a model the probe cannot run fails in the step, with its own error
+    except Exception:  # noqa: BLE001 - the probe is a courtesy: a model the probe cannot run fails in the step, with its own error
         return
     layout = trainer.layout
     n_params = sum(p.numel() for p in trainer.params)

@@ -17,7 +17,7 @@ import fcntl
 import json
 import os
 import socket
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from scaledrill.errors import ConfigError
@@ -77,7 +77,7 @@ def claim(run_dir: Path, resuming: bool) -> None:
         except ConfigError:
             os.close(fd)
             raise
-    started = datetime.now(timezone.utc).isoformat(timespec="seconds")
+    started = datetime.now(UTC).isoformat(timespec="seconds")
     os.ftruncate(fd, 0)
     os.pwrite(fd, json.dumps({"pid": os.getpid(), "host": socket.gethostname(), "started": started}).encode(), 0)
     _held[run_dir] = fd
