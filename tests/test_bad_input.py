@@ -1,6 +1,7 @@
 """Every kind of bad input: a one-paragraph error that names the key or file, a distinct
 exit status, no traceback, and nothing already written lost. (README, "Faults and bad input".)"""
 
+import os
 import socket
 import textwrap
 
@@ -81,6 +82,8 @@ CASES = {
                                 "~task.data.depth", "~task.data.noise", "~task.data.test_size", "~task.data.seed",
                                 "task.model.in_dim=32", "task.model.hidden=8", "task.model.out_dim=8"), DATA, "training sample 7"),
     "occupied port": ("port", CONFIG, "layout.port"),
+    "an address that is not a host": (("layout.backend=gloo", "layout.procs=2", "layout.address=not-a-host"), CONFIG, "layout.address"),
+    "a step larger than memory": (("layout.micro_batch=100000000",), CONFIG, "layout.micro_batch"),
     "missing mpiexec": (("layout.backend=mpi", "layout.procs=2", "layout.mpiexec=/nonexistent/mpiexec"), CONFIG, "layout.mpiexec"),
     "corrupted checkpoint": (_corrupt, CHECKPOINT, "garbage.pt"),
     "truncated checkpoint": (_truncated, CHECKPOINT, "cut.pt"),
@@ -95,7 +98,7 @@ CASES = {
 def test_bad_input(tmp_path, finished, name):
     what, status, needle = CASES[name]
     before = _snapshot(finished)
-    extra, env = [], {"PYTHONPATH": str(tmp_path)}
+    extra, env = [], {"PYTHONPATH": os.pathsep.join(p for p in (str(tmp_path), os.environ.get("PYTHONPATH")) if p)}
     if name == "NaN in the input data":
         _nan_data(tmp_path, finished)
     if callable(what):

@@ -62,6 +62,22 @@ def usage() -> str:
     return "\n".join(lines)
 
 
+def _claim_before_hydra(rest: list[str]) -> None:
+    """Hydra writes RUN_DIR/.hydra/ before a verb runs: a directory the run may not use is refused
+    here, first, so nothing in it changes (train/rundir.py)."""
+    from scaledrill.dist.base import running_under_launcher
+    from scaledrill.train.rundir import claim, resuming_from_argv, run_dir_from_argv
+
+    run_dir = run_dir_from_argv(rest)
+    if run_dir is None or running_under_launcher() or {"-m", "--multirun"} & set(rest):
+        return
+    try:
+        claim(run_dir, resuming_from_argv(rest))
+    except ScaledrillError as err:
+        print(f"scaledrill run: error: {err}", file=sys.stderr)
+        raise SystemExit(err.exit_code) from None
+
+
 def main(argv: list[str] | None = None) -> None:
     argv = sys.argv[1:] if argv is None else argv
     if not argv or argv[0] in ("-h", "--help", "help"):
@@ -75,6 +91,8 @@ def main(argv: list[str] | None = None) -> None:
         raise SystemExit(2)
     if verb == "report" and rest and "=" not in rest[0] and not rest[0].startswith("-"):
         rest = [f"path={rest[0]}", *rest[1:]]  # `scaledrill report PATH`
+    if verb == "run":
+        _claim_before_hydra(rest)
     sys.argv = [f"scaledrill {verb}", *rest]
     os.environ["HYDRA_FULL_ERROR"] = "1"  # Hydra raises its errors to us instead of printing them in its words
     try:

@@ -51,6 +51,30 @@ class WorkerFailed(ScaledrillError):
 
 
 class Interrupted(ScaledrillError):
-    """The run was stopped by SIGINT or SIGTERM after saving what it could."""
+    """The run was stopped by SIGINT or SIGTERM after saving what it could.
+
+    The status is 128 + the signal's number, as a shell reports a process the
+    signal ended: 130 for SIGINT (Ctrl-C), 143 for SIGTERM."""
 
     exit_code = 130
+
+    def __init__(self, message: str, signum: int = 2):
+        super().__init__(message)
+        self.exit_code = 128 + signum
+
+
+INTERRUPT_STATUSES = (130, 143)  # 128 + SIGINT, 128 + SIGTERM
+
+
+def error_for_status(status: int, message: str) -> ScaledrillError:
+    """The error a process reported by its exit status, raised again in the launcher,
+    so every backend ends a run with the same status as the local one."""
+    if status in INTERRUPT_STATUSES:
+        return Interrupted(message, status - 128)
+    if status == ConfigError.exit_code:
+        key, _, rule = message.partition(": ")  # as ConfigError wrote it
+        return ConfigError(key, rule)
+    for kind in (DataError, CheckpointError):
+        if kind.exit_code == status:
+            return kind(message)
+    return WorkerFailed(message)

@@ -48,7 +48,7 @@ def run_processes(cfg, backend: str, steps: int, run_dir: Path) -> Trajectory:
     (work / RESULT).unlink(missing_ok=True)
     launch(work, backend, procs, address=cfg.layout.address, mpiexec=cfg.layout.mpiexec,
            job="scaledrill.check.processes:follow_as_rank")  # a free port each time: the check starts several groups
-    return Trajectory.from_dict(torch.load(work / RESULT, weights_only=False))
+    return Trajectory.from_dict(torch.load(work / RESULT, weights_only=True))
 
 
 def follow_as_rank(cfg, work: Path, collective) -> None:

@@ -1,10 +1,13 @@
 """torch.distributed collectives (gloo on CPU; the same code takes NCCL on GPUs).
 
-Rendezvous is `env://`: MASTER_ADDR, MASTER_PORT, RANK and WORLD_SIZE come from
-our launcher or from torchrun. The timeout bounds how long a collective waits
+Rendezvous: MASTER_ADDR, MASTER_PORT, RANK and WORLD_SIZE come from our launcher
+or from torchrun. Our launcher serves the rendezvous store itself, on the address
+it was given (dist/launch.py), so every rank here is the store's client; under
+torchrun, rank 0 serves it (`env://`). The timeout bounds how long a collective waits
 for a peer that died, so a fault ends the run instead of hanging it.
 """
 
+import os
 from datetime import timedelta
 
 import torch
@@ -14,7 +17,12 @@ import torch.distributed as dist
 class GlooCollective:
     def __init__(self, timeout: timedelta):
         if not dist.is_initialized():
-            dist.init_process_group("gloo", init_method="env://", timeout=timeout)
+            if os.environ.get("SCALEDRILL_STORE") == "served":
+                env = os.environ
+                store = dist.TCPStore(env["MASTER_ADDR"], int(env["MASTER_PORT"]), None, False, timeout)
+                dist.init_process_group("gloo", store=store, rank=int(env["RANK"]), world_size=int(env["WORLD_SIZE"]), timeout=timeout)
+            else:
+                dist.init_process_group("gloo", init_method="env://", timeout=timeout)
         self.rank = dist.get_rank()
         self.size = dist.get_world_size()
 

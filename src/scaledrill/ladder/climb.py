@@ -112,11 +112,11 @@ def run_rung(cfg, plan: Plan, rung: Rung, ladder_dir: Path, tick=lambda step: No
             summary, watch = _launched(run_cfg, plan, run_dir)
     except ConfigError as err:
         raise ConfigError(err.key, f"{err.rule} — at rung B={rung.global_batch}", err.value) from None
-    except Interrupted:  # the user stopped the ladder: no later rung may start
+    except Interrupted as err:  # the user stopped the ladder: no later rung may start
         done = ladder_dir / "ladder.json"
         kept = f"the rungs finished before it are in {done}" if done.exists() else "no rung had finished"
         raise Interrupted(f"stopped by a signal during rung B={rung.global_batch} (its checkpoint is in "
-                          f"{run_dir / 'checkpoints'}); {kept}") from None
+                          f"{run_dir / 'checkpoints'}); {kept}", err.exit_code - 128) from None
     except KeyboardInterrupt:
         raise
     except Exception as err:  # noqa: BLE001 - recorded; the ladder goes on

@@ -32,11 +32,14 @@ HEATMAPS = (("update_ratio", "update / weight norm"), ("trust_ratio", "trust rat
 def load_json(path: Path):
     """(document, None) or (None, why it could not be read)."""
     try:
-        return json.loads(path.read_text(encoding="utf-8")), None
+        doc = json.loads(path.read_text(encoding="utf-8"))
     except FileNotFoundError:
         return None, f"{path.name} is missing"
     except (OSError, ValueError) as err:
         return None, f"{path.name} could not be read ({err})"
+    if not isinstance(doc, dict):  # every result file this tool writes is one JSON object
+        return None, f"{path.name} could not be read (it holds a JSON {type(doc).__name__}, not an object of named results)"
+    return doc, None
 
 
 def _series(scalars: dict, names) -> list:

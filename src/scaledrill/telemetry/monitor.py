@@ -32,6 +32,7 @@ class StepRecord:
     trust: dict | None = None  # per-layer trust ratios (LARS, LAMB)
     sync: dict = field(default_factory=dict)
     interrupt: bool = False  # some process was asked to stop (SIGINT/SIGTERM)
+    signum: int = 0  # which signal, for the exit status (128 + it)
 
     def scalars(self) -> dict[str, float]:
         out = {"loss": self.loss, "lr": self.lr, "grad_norm": self.grad_norm, "grad_norm_clipped": self.clipped_norm}
@@ -123,6 +124,11 @@ class Monitor:
         self.noise.load_state_dict(state["noise"])
         for detector, saved in zip(self.detectors, state["detectors"]):
             detector.load_state_dict(saved)
+
+    def flush(self) -> None:
+        """Commit the buffered rows now (at a checkpoint: the store then covers every step it holds)."""
+        if self.store is not None:
+            self.store.flush()
 
     def close(self, status: str) -> None:
         if self.events is not None:

@@ -5,7 +5,10 @@ readers and one writer work at once), queryable by the report without a server,
 and crash-safe: a transaction is either in the file or not.
 
 How:
-1. `start` inserts a `runs` row (status "running") and commits at once.
+1. `start` inserts a `runs` row (status "running") and commits at once. A row
+   still "running" from before is marked "killed": the run directory's lock
+   (train/rundir.py) lets one run at a time write here, so that run ended
+   without closing (kill -9, power loss).
 2. `log_scalars` / `log_layers` only buffer rows. Every `flush_every` calls the
    buffer goes in with `executemany`, inside one transaction, so a crash (even
    SIGKILL) loses at most the rows of the batch not yet committed.
@@ -65,6 +68,7 @@ class RunStore:
         """Step 1: a new run row; returns its id."""
         started = datetime.now(timezone.utc).isoformat(timespec="seconds")
         with self._conn:
+            self._conn.execute("UPDATE runs SET status = 'killed' WHERE status = 'running'")
             cur = self._conn.execute(
                 "INSERT INTO runs (kind, started, config_yaml, status) VALUES (?, ?, ?, 'running')",
                 (kind, started, config_yaml),

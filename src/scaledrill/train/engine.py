@@ -11,6 +11,7 @@ their protocols. Every process runs this same loop on its own workers.
 """
 
 import hashlib
+import signal
 import time
 from pathlib import Path
 
@@ -33,6 +34,7 @@ from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
 from scaledrill.train.grads import GradComputer, flatten_params, write_grads
+from scaledrill.train.memory import check_fits
 from scaledrill.train.signals import StopFlag
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
@@ -62,6 +64,7 @@ class Trainer:
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.path = grad_path(cfg.train.grads, cfg.sync)
+        check_fits(self)  # before the first step allocates
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
@@ -135,7 +138,7 @@ class Trainer:
         result = self.grads.compute(micro, scale, path)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
-        shared = self._share_scalars([result.loss_sum, local_sq, float(bool(flag and flag.raised))], self.running_stats)
+        shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
         average = self.sync.reduce(result.local, self.workers, step, donate=True)
         scalars = shared()
@@ -171,6 +174,7 @@ class Trainer:
             trust=dict(trust) if trust and layers_due else None,
             sync=dict(self.sync.stats),
             interrupt=bool(scalars[2] > 0),
+            signum=(flag.signum if flag else 0) or _one_signal(float(scalars[2]), self.comm.size),
         )
 
     def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
@@ -242,6 +246,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                 if collective.rank == 0 and (last or (every and trainer.step_index % every == 0)):
                     evals[trainer.step_index] = trainer.evaluate()
                 if ckpt_dir is not None and (record.interrupt or trainer.step_index == steps or (ckpt_every and trainer.step_index % ckpt_every == 0)):
+                    monitor.flush()  # first: the store then holds every step the newest checkpoint covers, even after kill -9
                     saved = checkpoint.save(trainer, monitor, ckpt_dir)
                     monitor.last_checkpoint = str(saved) if saved else monitor.last_checkpoint
                 if on_step is not None and on_step(trainer, record):
@@ -251,7 +256,8 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
                     monitor.close(status)
                     raise Interrupted(
                         f"stopped by a signal after step {trainer.step_index}; a checkpoint is in {ckpt_dir}; "
-                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)"
+                        f"continue with: scaledrill run resume={ckpt_dir} (plus the same overrides)",
+                        record.signum,
                     )
                 if stopped is not None or stopped_early:
                     break
@@ -289,6 +295,14 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     summary.update(monitor.summary())
     summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
     return summary
+
+
+def _one_signal(total: float, procs: int) -> int:
+    """The signal behind a stop flag summed over the processes, when this process saw none itself."""
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        if total % int(signum) == 0 and 0 < total <= procs * int(signum):
+            return int(signum)
+    return int(signal.SIGINT)
 
 
 def config_yaml(cfg) -> str:

@@ -14,16 +14,16 @@ from omegaconf import OmegaConf
 from scaledrill.config.validate import validate_run
 from scaledrill.dist import open_collective
 from scaledrill.dist.base import running_under_launcher
-from scaledrill.dist.launch import check_backend_available, check_port, launch
+from scaledrill.dist.launch import check_backend_available, check_port, launch, resolve_address
 from scaledrill.errors import ConfigError
 from scaledrill.io import write_json
 from scaledrill.train.progress import StepProgress
+from scaledrill.train.rundir import claim
 
 
 def prepare_run_dir(run_dir: Path, cfg) -> None:
-    if (run_dir / "summary.json").exists():
-        raise ConfigError("hydra.run.dir", f"{run_dir} already holds a finished run; choose a new directory", str(run_dir))
-    run_dir.mkdir(parents=True, exist_ok=True)
+    """Claim the directory for this run (train/rundir.py: locked, not finished, not another run's checkpoints)."""
+    claim(run_dir, resuming=bool(cfg.get("resume")))
     (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg, resolve=True))
 
 
@@ -70,6 +70,8 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
     check_process_count(layout.procs)
     where = cfg.layout
     check_backend_available(layout.backend, where.get("mpiexec"))
+    if layout.backend != "local":
+        resolve_address(where.address)  # a name that resolves to nothing: refused now, not in a rank
     if layout.backend == "gloo":
         check_port(where.address, where.port)
     prepare_run_dir(run_dir, cfg)
@@ -77,5 +79,5 @@ def run_verb(cfg, run_dir: Path) -> dict | None:
     if layout.backend == "local":
         return train_as_rank(cfg, run_dir, open_collective("local"))
     launch(run_dir, layout.backend, layout.procs, address=where.address, port=where.port,
-           mpiexec=where.get("mpiexec"))
+           mpiexec=where.get("mpiexec"), timeout_s=cfg.train.timeout_s)
     return json.loads((run_dir / "summary.json").read_text())

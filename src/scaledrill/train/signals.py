@@ -13,6 +13,7 @@ class StopFlag:
 
     def __init__(self):
         self.raised = False
+        self.signum = 0  # which signal: the run's exit status is 128 + it
         self._previous = {}
 
     def __enter__(self):
@@ -23,6 +24,7 @@ class StopFlag:
 
     def _handle(self, signum, frame):
         self.raised = True
+        self.signum = self.signum or signum
 
     def __exit__(self, *exc):
         for sig, handler in self._previous.items():
