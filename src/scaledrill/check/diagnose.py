@@ -22,11 +22,18 @@ from scaledrill.check.findings import Finding
 from scaledrill.check.paths import variant
 from scaledrill.check.reference import build_model, global_batches
 from scaledrill.check.tolerance import Tolerance, compare, compare_grads
+from scaledrill.nn.dropout import key_samples
 from scaledrill.nn.ghost_bn import set_group_size
+from scaledrill.tasks.base import forward_loss
 
 
 def _rel(layers) -> float:
     return max(x.max_rel for x in layers)
+
+
+def _keyed_loss(task, batch: dict) -> float:
+    key_samples(task.model, batch["index"], 0)  # the same dropout masks for a sample in the whole batch and its part
+    return float(forward_loss(task.model, task.loss, batch))
 
 
 def dropout_modules(model) -> list:
@@ -105,16 +112,17 @@ class Diagnosis:
         if not engine:
             return
         cfg = self.runner.cfg
-        task = build_model(cfg)
+        dtype = self.runner.ref_dtype
+        task = build_model(cfg, dtype)
         if self.hook:
             self.hook(task.model)
         b = cfg.layout.micro_batch
         set_group_size(task.model, b)
-        batch = global_batches(cfg, task.data, 1)[0]
+        batch = global_batches(cfg, task.data, 1, dtype)[0]
         with torch.no_grad():
-            whole = float(task.loss(task.model(batch["input"]), batch))
+            whole = _keyed_loss(task, batch)
             parts = [{k: v[i : i + b] for k, v in batch.items()} for i in range(0, batch["input"].shape[0], b)]
-            summed = sum(float(task.loss(task.model(p["input"]), p)) for p in parts)
+            summed = sum(_keyed_loss(task, p) for p in parts)
             counted = sum(float(task.loss.count(p)) for p in parts), float(task.loss.count(batch))
         if abs(whole - summed) <= 1e-9 * max(abs(whole), 1.0) and counted[0] == counted[1]:
             return
@@ -141,7 +149,7 @@ class Diagnosis:
                     f"of {cfg.train.dtype} arithmetic{detail}",
                     "use check.tolerance_scale=1 (the rounding-derived rule) or more"))
                 continue
-            if cfg.train.dtype == "float32" and not name.startswith("processes:"):
+            if cfg.train.dtype == "float32" and self.runner.ref_dtype == torch.float64 and not name.startswith("processes:"):
                 wide = self.runner.run(name, cfg=variant(cfg, **{"train.dtype": "float64"}), model_hook=self.hook)
                 wide_tol = Tolerance(2.0**-53, self.tol.batch, self.tol.scale)
                 if compare(name, wide, self.ref, wide_tol).ok:
