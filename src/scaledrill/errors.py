@@ -40,6 +40,14 @@ class WorkerFailed(ScaledrillError):
     exit_code = 5
 
 
+class ReportedByRank(ScaledrillError):
+    """A rank's own error (bad input, data, checkpoint) reported by the launcher with the rank's exit status."""
+
+    def __init__(self, message: str, exit_code: int):
+        super().__init__(message)
+        self.exit_code = exit_code
+
+
 class Interrupted(ScaledrillError):
     """The run was stopped by SIGINT or SIGTERM after saving what it could."""
 

@@ -50,7 +50,8 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
     if reference["why"]:
         print(f"reference in float32: {reference['why']}; tolerance u = 2^-24 of the path plus 2^-24 of the reference")
     if runner.model_note:
-        print(runner.model_note)
+        kept = not cfg.train.get("convert_batchnorm", True)
+        print(runner.model_note + ("; BatchNorm in the reference only (train.convert_batchnorm=false keeps the paths' stock BatchNorm)" if kept else ""))
 
     ref = runner.reference()  # 2.
     runs = {name: runner.run(name) for name in plan}  # 3.

@@ -18,7 +18,10 @@ import sys
 import time
 from pathlib import Path
 
-from scaledrill.errors import ConfigError, Interrupted, WorkerFailed
+from scaledrill.errors import CheckpointError, ConfigError, DataError, Interrupted, ReportedByRank, WorkerFailed
+
+# A rank that stops on one of these exits with its status: the run fails for the same reason as it would locally.
+RANK_STATUSES = {e.exit_code for e in (ConfigError, DataError, CheckpointError)}
 
 
 def threads_per_proc(procs: int) -> int:
@@ -107,6 +110,11 @@ def _failure_message(run_dir: Path, rank, code: int, procs: int) -> str:
     return f"the process exited with status {code}"
 
 
+def error_file_written(run_dir: Path, rank, procs: int) -> bool:
+    ranks = [rank] if isinstance(rank, int) else range(procs)
+    return any(error_file(run_dir, r).exists() for r in ranks)
+
+
 def _stop(children: dict, grace_s: float) -> None:
     deadline = time.monotonic() + grace_s
     for proc in children.values():
@@ -132,6 +140,8 @@ def _watch(children: dict, run_dir: Path, procs: int, grace_s: float) -> None:
                 message = _failure_message(run_dir, rank, code, procs)
                 if code == Interrupted.exit_code:
                     raise Interrupted(message)
+                if code in RANK_STATUSES and error_file_written(run_dir, rank, procs):
+                    raise ReportedByRank(f"{message} (rank {rank}; the other processes were stopped)", code)
                 if rank == "mpiexec":
                     raise WorkerFailed(f"an MPI rank failed ({message}); mpiexec's report above names it; the other ranks were stopped")
                 raise WorkerFailed(f"rank {rank} failed: {message}; the other processes were stopped")
