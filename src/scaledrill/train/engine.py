@@ -64,6 +64,10 @@ class Trainer:
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
         self.grads.on_fallback = self._fallback
+        if self.sync.bitwise:
+            # A threaded kernel splits its sums by thread count, and the launcher gives each process
+            # cores/P threads: one thread in every process keeps each worker's row the same for any P.
+            torch.set_num_threads(1)
         self.path = self._choose_path(cfg.train.grads)
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.get("batchnorm", "worker")
