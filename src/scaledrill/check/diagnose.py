@@ -6,7 +6,10 @@ Checks, in order; each explains some of the failing paths and hands the rest on:
    that now match are explained by dropout, and later checks run with it off;
 2. a custom step: where it called reduce and clipping, and which wrong rule its
    gradient follows (diagnose_step.py);
-3. BatchNorm (check.batchnorm=global, where the paths train with
+3. stock BatchNorm left as it is (train.convert_batchnorm=false): does the path
+   match when rerun with it converted to per-worker statistics? Then its
+   BatchNorm normalised over other samples than each worker's own;
+   BatchNorm (check.batchnorm=global, where the paths train with
    train.batchnorm=global): does the path match the reference with per-worker
    statistics instead? Then its BatchNorm never saw the other workers' samples;
 4. loss normalisation: is the task's loss a sum over units, i.e. is the loss of
@@ -22,11 +25,19 @@ from scaledrill.check.findings import Finding
 from scaledrill.check.paths import variant
 from scaledrill.check.reference import build_model, global_batches
 from scaledrill.check.tolerance import Tolerance, compare, compare_grads
+from scaledrill.nn.dropout import key_samples
 from scaledrill.nn.ghost_bn import set_group_size
+from scaledrill.nn.stock import stock_batchnorm
+from scaledrill.tasks.base import build_task, forward_loss
 
 
 def _rel(layers) -> float:
     return max(x.max_rel for x in layers)
+
+
+def _keyed_loss(task, batch: dict) -> float:
+    key_samples(task.model, batch["index"], 0)  # the same dropout masks for a sample in the whole batch and its part
+    return float(forward_loss(task.model, task.loss, batch))
 
 
 def dropout_modules(model) -> list:
@@ -83,6 +94,30 @@ class Diagnosis:
             "in a custom step, or content_keys(input) in a model), so every layout drops the same units"))
 
     # 3. -----------------------------------------------------------------------
+    def stock_batchnorm(self) -> None:
+        cfg = self.runner.cfg
+        if cfg.train.convert_batchnorm:
+            return
+        torch.manual_seed(cfg.train.seed)
+        stock = stock_batchnorm(build_task(cfg.task).model)
+        engine = [n for n in self.open if not n.startswith("step:")]
+        if not stock or not engine:
+            return
+        converted = variant(cfg, **{"train.convert_batchnorm": True})
+        reruns = {n: self.runner.run(n, cfg=converted, model_hook=self.hook) for n in engine}
+        fixed = [n for n in engine if compare(n, reruns[n], self.ref, self.tol).ok]
+        if not fixed:
+            return
+        L = cfg.layout
+        self._explained(fixed, Finding(
+            f"BatchNorm statistics: the model's stock BatchNorm ({', '.join(stock)}) normalised over the samples each "
+            "call was given, not over each worker's own micro-batch",
+            f"{', '.join(fixed)} match the true batch when the same BatchNorm keeps per-worker statistics of b = "
+            f"{L.micro_batch} samples (train.convert_batchnorm=true); with train.convert_batchnorm=false the fused path "
+            f"normalises all V·b samples of a process at once",
+            "leave train.convert_batchnorm=true (the default), which makes every stock BatchNorm a GhostBatchNorm "
+            "with the same parameters and buffers"))
+
     def batchnorm(self) -> None:
         if self.runner.batchnorm != "global":  # the paths trained with per-worker statistics, as the reference did
             return
@@ -105,16 +140,17 @@ class Diagnosis:
         if not engine:
             return
         cfg = self.runner.cfg
-        task = build_model(cfg)
+        dtype = self.runner.ref_dtype
+        task = build_model(cfg, dtype)
         if self.hook:
             self.hook(task.model)
         b = cfg.layout.micro_batch
         set_group_size(task.model, b)
-        batch = global_batches(cfg, task.data, 1)[0]
+        batch = global_batches(cfg, task.data, 1, dtype)[0]
         with torch.no_grad():
-            whole = float(task.loss(task.model(batch["input"]), batch))
+            whole = _keyed_loss(task, batch)
             parts = [{k: v[i : i + b] for k, v in batch.items()} for i in range(0, batch["input"].shape[0], b)]
-            summed = sum(float(task.loss(task.model(p["input"]), p)) for p in parts)
+            summed = sum(_keyed_loss(task, p) for p in parts)
             counted = sum(float(task.loss.count(p)) for p in parts), float(task.loss.count(batch))
         if abs(whole - summed) <= 1e-9 * max(abs(whole), 1.0) and counted[0] == counted[1]:
             return
@@ -141,7 +177,7 @@ class Diagnosis:
                     f"of {cfg.train.dtype} arithmetic{detail}",
                     "use check.tolerance_scale=1 (the rounding-derived rule) or more"))
                 continue
-            if cfg.train.dtype == "float32" and not name.startswith("processes:"):
+            if cfg.train.dtype == "float32" and self.runner.ref_dtype == torch.float64 and not name.startswith("processes:"):
                 wide = self.runner.run(name, cfg=variant(cfg, **{"train.dtype": "float64"}), model_hook=self.hook)
                 wide_tol = Tolerance(2.0**-53, self.tol.batch, self.tol.scale)
                 if compare(name, wide, self.ref, wide_tol).ok:
@@ -164,7 +200,7 @@ class Diagnosis:
         self.randomness()
         if self.open:
             step_checks(self)
-        for check in (self.batchnorm, self.loss_normalisation, self.leftover):
+        for check in (self.stock_batchnorm, self.batchnorm, self.loss_normalisation, self.leftover):
             if self.open:
                 check()
         return self.findings

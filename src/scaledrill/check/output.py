@@ -2,6 +2,7 @@
 
 check.json (rendered by the report):
     {"verdict": "match" | "mismatch", "tolerance_rule": str,
+     "reference": {"dtype": "float64" | "float32", "why": str (why not float64), "unit_roundoff"?: float},
      "paths": [{"name", "ok", "layers": [{"layer", "max_abs", "max_rel", "tolerance", "ok"}],
                 "trajectory": {"steps", "max_abs", "tolerance", "ok"} | null}],
      "skipped": [{"name", "reason"}],
@@ -33,10 +34,11 @@ def path_table(result) -> Table:
     return table
 
 
-def payload(results, skipped: dict, findings) -> dict:
+def payload(results, skipped: dict, findings, reference: dict | None = None) -> dict:
     return {
         "verdict": "match" if all(r.ok for r in results) else "mismatch",
         "tolerance_rule": RULE,
+        "reference": reference or {"dtype": "float64", "why": ""},
         "paths": [r.to_json() for r in results],
         "skipped": [{"name": k, "reason": v} for k, v in skipped.items()],
         "diagnosis": [vars(f) for f in findings],
@@ -59,7 +61,7 @@ def show(results, skipped: dict, findings, console: Console | None = None) -> No
     console.print(f"[dim]tolerance: {RULE}[/]")
 
 
-def save(run_dir: Path, results, skipped: dict, findings) -> dict:
-    out = payload(results, skipped, findings)
+def save(run_dir: Path, results, skipped: dict, findings, reference: dict | None = None) -> dict:
+    out = payload(results, skipped, findings, reference)
     write_json(Path(run_dir) / "check.json", out)
     return out

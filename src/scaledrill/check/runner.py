@@ -12,7 +12,7 @@ from pathlib import Path
 from scaledrill.check.batchnorm import has_batchnorm, path_batchnorm, unserved
 from scaledrill.check.paths import GRAD_PATHS, accumulation, variant, virtual
 from scaledrill.check.processes import available, process_count, run_processes
-from scaledrill.check.reference import reference
+from scaledrill.check.reference import model_dtype, reference
 from scaledrill.check.threads import load_step, run_step_function
 from scaledrill.check.trajectory import Trajectory
 from scaledrill.errors import ConfigError
@@ -25,6 +25,7 @@ class Runner:
         self.probes: dict = {}  # path name -> Probe of a user's step
         self.variants = 0
         self.batchnorm = path_batchnorm(cfg, settings, has_batchnorm(cfg))  # train.batchnorm of every engine path
+        self.ref_dtype, self.ref_why, self.model_note = model_dtype(cfg)  # float64 unless the model fixes its own dtype
 
     def plan(self) -> tuple[list[str], dict[str, str]]:
         """(paths to run, {skipped path: why}); ConfigError when nothing is left to compare."""
@@ -69,7 +70,7 @@ class Runner:
         return run, skipped
 
     def reference(self, batchnorm: str | None = None, model_hook=None) -> Trajectory:
-        return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook)
+        return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook, self.ref_dtype)
 
     def run(self, name: str, cfg=None, model_hook=None) -> Trajectory:
         given, steps = cfg or self.cfg, self.settings.steps

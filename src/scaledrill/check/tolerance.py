@@ -13,7 +13,11 @@ Stability of Numerical Algorithms", 2nd ed., §2.8, made rigorous by Higham & Ma
 each sample's forward and backward; on the demo tasks the largest error seen is
 below 2·u·√B·max|g|, so C = 32 leaves a margin of 16 while a real mistake (a
 wrong normalisation, a clip per micro-batch, a BatchNorm over other samples) is
-off by 10⁻³ to 1 relative. Parameters move by a learning rate times gradients whose
+off by 10⁻³ to 1 relative. max|g_ref,l| is taken over all parameters of the
+module that owns l (its weight and bias share one backward signal): the bias of a
+layer followed by BatchNorm has a gradient of exactly 0 in exact arithmetic, a
+cancellation of terms as large as the weight's, so its rounding is the weight's.
+Parameters move by a learning rate times gradients whose
 errors add up step after step, so their tolerance grows linearly with t.
 """
 
@@ -24,7 +28,7 @@ from scaledrill.layout import Layout
 
 C = 32.0
 UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}
-RULE = "gradient: tol = C·u·√B·max|g_ref| per layer; parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"
+RULE = "gradient: tol = C·u·√B·max|g_ref| per layer (max over the module's parameters); parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"
 
 
 @dataclass
@@ -79,12 +83,22 @@ class Tolerance:
         return C * self.unit * math.sqrt(self.batch) * steps * magnitude * self.scale
 
 
+def _module_scale(names, ref) -> dict[str, float]:
+    """max|g_ref| over the parameters of each module (the name up to its last dot)."""
+    scale: dict[str, float] = {}
+    for name, r in zip(names, ref):
+        owner = name.rpartition(".")[0]
+        scale[owner] = max(scale.get(owner, 0.0), float(r.abs().max()))
+    return scale
+
+
 def compare_grads(names, grads, ref, tol: Tolerance) -> list[LayerResult]:
     out = []
+    scale = _module_scale(names, ref)
     for name, g, r in zip(names, grads, ref):
         diff = float((g - r).abs().max())
         size = float(r.abs().max())
-        bound = tol(size)
+        bound = tol(scale[name.rpartition(".")[0]])
         rel = diff / size if size > 0 else (0.0 if diff == 0 else math.inf)
         out.append(LayerResult(name, diff, rel, bound, diff <= bound))
     return out

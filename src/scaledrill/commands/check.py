@@ -13,13 +13,14 @@
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import torch
 from omegaconf import OmegaConf
 
 from scaledrill.check import output
 from scaledrill.check.diagnose import diagnose
 from scaledrill.check.runner import Runner
 from scaledrill.check.settings import read_settings
-from scaledrill.check.tolerance import Tolerance, compare
+from scaledrill.check.tolerance import UNIT_ROUNDOFF, Tolerance, compare
 from scaledrill.config.validate import validate_run
 
 
@@ -38,16 +39,25 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
     run_dir = Path(run_dir)
     run_dir.mkdir(parents=True, exist_ok=True)
     (run_dir / "config.yaml").write_text(OmegaConf.to_yaml(cfg))
-    print(f"{layout.describe()}; reference: float64 true batch, BatchNorm statistics "
+    tol = Tolerance.for_run(cfg, settings.tolerance_scale)
+    reference = {"dtype": "float64", "why": ""}
+    if runner.ref_dtype == torch.float32:  # both sides round in float32: their errors add
+        tol = Tolerance(tol.unit + UNIT_ROUNDOFF["float32"], tol.batch, tol.scale)
+        reference = {"dtype": "float32", "why": runner.ref_why, "unit_roundoff": tol.unit}
+    print(f"{layout.describe()}; reference: {reference['dtype']} true batch, BatchNorm statistics "
           f"{'per worker micro-batch' if settings.batchnorm == 'worker' else 'over the whole global batch'}"
           f"{'; paths train with train.batchnorm=global' if runner.batchnorm == 'global' else ''}")
+    if reference["why"]:
+        print(f"reference in float32: {reference['why']}; tolerance u = 2^-24 of the path plus 2^-24 of the reference")
+    if runner.model_note:
+        kept = not cfg.train.convert_batchnorm
+        print(runner.model_note + ("; BatchNorm in the reference only (train.convert_batchnorm=false keeps the paths' stock BatchNorm)" if kept else ""))
 
-    tol = Tolerance.for_run(cfg, settings.tolerance_scale)
     ref = runner.reference()  # 2.
     runs = {name: runner.run(name) for name in plan}  # 3.
     results = [compare(name, traj, ref, tol) for name, traj in runs.items()]  # 4.
     failing = [r for r in results if not r.ok]
     findings = diagnose(runner, ref, tol, failing, runs) if failing else []  # 5.
     output.show(results, skipped, findings)  # 6.
-    report = output.save(run_dir, results, skipped, findings)
+    report = output.save(run_dir, results, skipped, findings, reference)
     return CheckResult(0 if not failing else 1, report)

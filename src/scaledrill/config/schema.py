@@ -45,6 +45,7 @@ class TrainConfig:
     grads: str = "auto"  # auto | fused | vmap | loop
     dtype: str = "float32"  # float32 | float64
     batchnorm: str = "worker"  # BatchNorm statistics per worker | global (all W·b samples of the micro-step; fused path only)
+    convert_batchnorm: bool = True  # stock BatchNorm1d/2d/3d/SyncBatchNorm of the model become per-worker GhostBatchNorm
     timeout_s: float = 60  # how long a collective waits for a peer before the run fails
     progress: bool = True
 

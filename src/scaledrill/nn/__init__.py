@@ -1,4 +1,4 @@
-"""Demo models and ghost batch normalization; every model runs under torch.func.vmap."""
+"""Ghost batch normalization, sample-keyed dropout, and the conversion of stock torch modules (stock.py)."""
 
 from scaledrill.nn.ghost_bn import GhostBatchNorm, convert_batchnorm, set_group_size
 

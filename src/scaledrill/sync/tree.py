@@ -26,7 +26,7 @@ may too (a batched convolution of 8 workers differs from a single one). So in
 bitwise mode the sync takes one row per worker and `train.grads=auto` resolves to
 the loop path (path.py), which computes each worker alone. Results are then bitwise equal
 across layouts for the same number of intra-op threads per process (a threaded
-reduction may split sums differently).
+reduction may split sums differently), which the engine pins to one in this mode.
 
 Cost: each process receives the P−1 other subtree sums, (P−1)·n values, and holds
 P·n, against 2·(P−1)/P·n sent and received per process for a ring all-reduce

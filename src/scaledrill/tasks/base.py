@@ -42,3 +42,30 @@ def build_task(node) -> Task:
     if not callable(loss) or not hasattr(loss, "count"):
         raise ConfigError("task.loss._target_", "must build a loss with __call__(output, batch) and count(batch)")
     return Task(name=str(node.get("name", "custom")), model=model, data=data, loss=loss)
+
+
+def target_name(obj) -> str:
+    return f"{type(obj).__module__}.{type(obj).__qualname__}"
+
+
+def forward_loss(model, loss, batch: dict, call=None) -> torch.Tensor:
+    """loss(model(batch["input"]), batch), with a user's failing model or loss named as a ConfigError.
+
+    `call(input)` replaces `model(input)` (e.g. a functional call of the same model)."""
+    try:
+        out = model(batch["input"]) if call is None else call(batch["input"])
+    except Exception as err:  # noqa: BLE001 - any failure of user code is reported, not traced back
+        raise ConfigError("task.model._target_", f"the forward pass of {target_name(model)} raised "
+                          f"{type(err).__name__}: {err}") from None
+    if not isinstance(out, torch.Tensor):
+        raise ConfigError("task.model._target_", f"the forward pass of {target_name(model)} returned a "
+                          f"{type(out).__name__}; the loss needs one tensor (return e.g. the logits only)")
+    try:
+        value = loss(out, batch)
+    except Exception as err:  # noqa: BLE001
+        raise ConfigError("task.model._target_", f"the loss {target_name(loss)} (task.loss._target_) failed on the "
+                          f"output of {target_name(model)}, shaped {list(out.shape)}: {type(err).__name__}: {err}") from None
+    if not isinstance(value, torch.Tensor) or value.numel() != 1:
+        raise ConfigError("task.loss._target_", f"{target_name(loss)} must return one number (the SUM of the per-unit "
+                          f"losses), got {type(value).__name__} {list(getattr(value, 'shape', []))}")
+    return value.reshape(())

@@ -23,6 +23,7 @@ from scaledrill.dist import Collective
 from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
+from scaledrill.nn.stock import adapt_model
 from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
 from scaledrill.sync import build_sync
 from scaledrill.sync.path import grad_path
@@ -53,7 +54,9 @@ class Trainer:
 
         torch.manual_seed(cfg.train.seed)  # same initial parameters in every process
         self.task: Task = build_task(cfg.task)
+        self.task.model, note = adapt_model(self.task.model, cfg.train.seed, batchnorm=cfg.train.convert_batchnorm)
         self.model = self.task.model.to(self.dtype)
+        self._say(note)
         set_group_size(self.model, self.layout.micro_batch)
         self.model.train()
 
@@ -63,7 +66,12 @@ class Trainer:
         self.params = [p for p in self.model.parameters()]
         self.sync = build_sync(cfg.sync, self.layout, [p.shape for p in self.params], collective, cfg.train.seed, dtype=self.dtype)
         self.grads = GradComputer(self.model, self.task.loss, self.layout.per_proc)
-        self.path = grad_path(cfg.train.grads, cfg.sync)
+        self.grads.on_fallback = self._fallback
+        if self.sync.bitwise:
+            # A threaded kernel splits its sums by thread count, and the launcher gives each process
+            # cores/P threads: one thread in every process keeps each worker's row the same for any P.
+            torch.set_num_threads(1)
+        self.path = self._choose_path(cfg.train.grads)
         check_fits(self)  # before the first step allocates
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.batchnorm
@@ -78,6 +86,26 @@ class Trainer:
         self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
         self.clip_norm = cfg.optim.clip_norm
 
+
+    def _say(self, line: str) -> None:
+        """One line for the user, from rank 0 of a run that shows its progress."""
+        if line and self.comm.rank == 0 and self.cfg.train.progress:
+            print(line, flush=True)
+
+    def _fallback(self, reason: str) -> None:
+        V = self.layout.per_proc
+        if getattr(self, "path", None) == "vmap":
+            self.path = "loop"
+        self._say(f"grads: the per-worker steps use the loop path for this run ({reason}); it runs the {V} workers of "
+                  f"each process one after another, up to {V}x the forward/backward calls of vmap (an estimate)")
+
+    def _choose_path(self, asked: str) -> str:
+        chosen = grad_path(asked, self.cfg.sync)  # sync/path.py: the one rule
+        if chosen == "vmap" and self.grads.vmap_failure is not None:
+            self.grads.announce_fallback()
+            return "loop"
+        return chosen
+
     # -- one step ------------------------------------------------------------
     def _micro_batches(self, step: int) -> list[dict]:
         index = self.sampler.worker_batches(step, self.workers)  # [k, V, b]
@@ -85,7 +113,7 @@ class Trainer:
         for m in range(self.layout.accum):
             batch = self.task.data.train.take(index[m].reshape(-1))
             check_finite(batch, index[m])
-            micro.append(cast_batch(batch, self.dtype))
+            micro.append(dict(cast_batch(batch, self.dtype), index=index[m].reshape(-1)))
         return micro
 
     def _global_count(self, micro: list[dict]) -> float:
@@ -135,6 +163,7 @@ class Trainer:
         scale = self.layout.workers / self._global_count(micro)
         noise = self._noise_due(step)
         path = "vmap" if noise and self.path == "fused" else self.path
+        self.grads.step = step
         result = self.grads.compute(micro, scale, path)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`

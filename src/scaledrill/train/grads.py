@@ -12,15 +12,29 @@ global token count and never as a mean of micro-batch means.
 - vmap: per-worker gradients with torch.func; returns [V, n]. BatchNorm buffers
   go in batched (one copy per worker) and come back as their mean.
 - loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
+  The first time vmap fails on a model (recurrent layers, in-place or
+  data-dependent code), this run falls back to loop for good and says so once.
+
+Before every forward, sample-keyed dropout modules learn the global indices of the
+samples and the step (scaledrill.nn.dropout.key_samples), so every path drops the
+same units of the same sample.
 
 Every path accumulates over the k micro-steps and returns flat vectors in
 `model.parameters()` order.
 """
 
+import warnings
 from dataclasses import dataclass
 
 import torch
 from torch.func import functional_call, grad, vmap
+
+from scaledrill.errors import ScaledrillError
+from scaledrill.nn.dropout import key_samples
+from scaledrill.tasks.base import forward_loss
+
+# Modules torch.func.vmap cannot run per worker (their kernels take no batched inputs).
+NO_VMAP = (torch.nn.RNNBase,)
 
 
 @dataclass
@@ -29,8 +43,9 @@ class StepGrads:
     loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
 
 
-def _sum_loss(loss, model, batch, scale):
-    return loss(model(batch["input"]), batch) * scale
+def _sum_loss(loss, model, batch, scale, step=0):
+    key_samples(model, batch.get("index"), step)
+    return forward_loss(model, loss, batch) * scale
 
 
 class GradComputer:
@@ -45,6 +60,11 @@ class GradComputer:
         # integer counters) are the same everywhere and are left alone.
         self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
         self.numel = sum(p.numel() for p in self.params)
+        self.step = 0  # the optimizer step, which keys the dropout masks
+        self.announced = False
+        self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
+        self.vmap_failure = next((f"{type(m).__name__} has no per-worker (vmap) kernel" for m in model.modules()
+                                  if isinstance(m, NO_VMAP)), None)
 
     # -- fused ---------------------------------------------------------------
     def fused(self, micro: list[dict], scale: float) -> StepGrads:
@@ -52,7 +72,7 @@ class GradComputer:
         views = _views(out[0], self.params)
         total = 0.0
         for batch in micro:
-            value = _sum_loss(self.loss, self.model, batch, scale)
+            value = _sum_loss(self.loss, self.model, batch, scale, self.step)
             torch._foreach_add_(views, torch.autograd.grad(value, self.params))
             total += float(value.detach())
         return StepGrads(out, total)
@@ -73,13 +93,37 @@ class GradComputer:
                 named[n].copy_(value.mean(0) if value.is_floating_point() else value[0])
 
     def vmap(self, micro: list[dict], scale: float) -> StepGrads:
+        """Per-worker gradients by torch.func.vmap, or by loop once vmap has failed on this model."""
+        if self.vmap_failure is not None:
+            result = self.loop(micro, scale)
+            self.announce_fallback()
+            return result
+        try:
+            with warnings.catch_warnings():  # torch's note that a kernel runs unbatched under vmap: slower, still exact
+                warnings.filterwarnings("ignore", message="There is a performance drop")
+                return self._vmap(micro, scale)
+        except ScaledrillError:
+            raise
+        except Exception as err:  # noqa: BLE001 - vmap's limits show up as many kinds of error
+            result = self.loop(micro, scale)  # a model that fails here too is named by forward_loss
+            self.vmap_failure = f"torch.func.vmap failed: {type(err).__name__}: {str(err).splitlines()[0][:200]}"
+            self.announce_fallback()
+            return result
+
+    def announce_fallback(self) -> None:
+        if not self.announced and self.on_fallback is not None:
+            self.on_fallback(self.vmap_failure)
+        self.announced = True
+
+    def _vmap(self, micro: list[dict], scale: float) -> StepGrads:
         params = {n: p.detach() for n, p in zip(self.names, self.params)}
         buffers = self._batched_buffers()
-        model, loss = self.model, self.loss
+        model, loss, step = self.model, self.loss, self.step
 
         def worker_loss(p, b, batch):
+            key_samples(model, batch.get("index"), step)
             out = functional_call(model, (p, b), (batch["input"],), strict=False)
-            value = loss(out, batch) * scale
+            value = loss(out, batch).reshape(()) * scale
             return value, value
 
         per_worker = vmap(grad(worker_loss, has_aux=True), in_dims=(None, 0, 0))
@@ -89,6 +133,7 @@ class GradComputer:
             grads, values = per_worker(params, buffers, self._split(batch))
             out += torch.cat([grads[n].reshape(self.V, -1) for n in self.names], dim=1)
             total += float(values.sum())
+        key_samples(model, None)  # no batched tensor outlives the transform
         self._store_buffer_mean(buffers)
         return StepGrads(out, total)
 
@@ -106,7 +151,7 @@ class GradComputer:
             views = _views(out[v], self.params)
             for batch in split:
                 one = {k: t[v] for k, t in batch.items()}
-                value = _sum_loss(self.loss, self.model, one, scale)
+                value = _sum_loss(self.loss, self.model, one, scale, self.step)
                 torch._foreach_add_(views, torch.autograd.grad(value, self.params))
                 total += float(value.detach())
             for n in ends:
