@@ -16,6 +16,9 @@ def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
         raise ConfigError(f"train.{key}", rule, value)
 
 
+PRECISIONS = ("fp32", "bf16", "fp16")  # train.precision and train.accum_dtype (train/precision.py)
+UNIT_ROUNDOFF = {"fp32": 2.0**-24, "bf16": 2.0**-8, "fp16": 2.0**-11}  # u = 2^-(significand bits incl. the hidden one)
+SCALER_DEFAULTS = {"start": 65536.0, "grow": 2.0, "shrink": 0.5, "patience": 2000}  # common practice (train.scaler)
 PATHS = ("auto", "fused", "vmap", "loop")  # train.grads: how per-worker gradients are computed
 BATCHNORM = ("worker", "global")  # whose samples BatchNorm's statistics come from
 
@@ -53,6 +56,35 @@ def validate_batchnorm(cfg) -> None:
         raise batchnorm_path_error(cause)
 
 
+def is_number(value) -> bool:
+    return isinstance(value, (int, float)) and not isinstance(value, bool) and value == value and abs(value) != float("inf")
+
+
+def validate_precision(train) -> None:
+    """Raise ConfigError naming the first bad key among train.precision, accum_dtype, loss_scale, scaler."""
+    for key in ("precision", "accum_dtype"):
+        value = train.get(key, "fp32")
+        if value not in PRECISIONS:
+            raise ConfigError(f"train.{key}", f"must be one of {', '.join(PRECISIONS)}", value)
+    scale = train.get("loss_scale", "dynamic")
+    if scale not in ("dynamic", "none") and not (is_number(scale) and scale > 0):
+        raise ConfigError("train.loss_scale", "must be dynamic, none, or a positive number (a fixed scale)", scale)
+    given = train.get("scaler") or {}
+    unknown = sorted(set(given) - set(SCALER_DEFAULTS))
+    if unknown:
+        raise ConfigError(f"train.scaler.{unknown[0]}", f"unknown key; known: {', '.join(SCALER_DEFAULTS)}")
+    s = {k: given.get(k, v) for k, v in SCALER_DEFAULTS.items()}
+    rules = {
+        "start": (lambda v: is_number(v) and v > 0, "must be a positive number"),
+        "grow": (lambda v: is_number(v) and v > 1, "must be a number above 1"),
+        "shrink": (lambda v: is_number(v) and 0 < v < 1, "must lie strictly between 0 and 1"),
+        "patience": (lambda v: isinstance(v, int) and not isinstance(v, bool) and v >= 1, "must be a whole number of at least 1"),
+    }
+    for key, (ok, rule) in rules.items():
+        if not ok(s[key]):
+            raise ConfigError(f"train.scaler.{key}", rule, s[key])
+
+
 def validate_train(cfg) -> None:
     _positive_int(cfg, "steps")
     _positive_int(cfg, "eval_every", allow_zero=True)
@@ -65,6 +97,7 @@ def validate_train(cfg) -> None:
         raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", cfg.train.grads)
     if cfg.train.dtype not in ("float32", "float64"):
         raise ConfigError("train.dtype", "must be float32 or float64", cfg.train.dtype)
+    validate_precision(cfg.train)
     timeout = cfg.train.timeout_s
     if not isinstance(timeout, (int, float)) or isinstance(timeout, bool) or timeout <= 0:
         raise ConfigError("train.timeout_s", "must be a positive number of seconds", timeout)
