@@ -124,7 +124,7 @@ class GradExplosion(_Trailing):
         reason = None
         if self._ready(value):
             med = statistics.median(self.history)
-            if value > self.factor * med:
+            if med > 0 and value > self.factor * med:  # a zero median (gradients flushed to zero) has no scale
                 self.fired += 1
                 reason = (
                     f"{self.key} explosion at step {step}: {value:.6g} is {value / med:.1f}x "

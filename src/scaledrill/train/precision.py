@@ -151,6 +151,17 @@ class Precision:
                 layers[name] = {"underflow_share": z, "overflow_share": o}
         return Verdict(finite or not self.scaling, scalars, layers)
 
+    def state_dict(self) -> dict:
+        return {"scaling": self.scaling, "scaler": self.scaler.state_dict()}
+
+    def load_state_dict(self, state: dict) -> None:
+        """Continue the checkpoint's scale, unless it was made without loss scaling (a replay
+        that turns scaling on starts from train.scaler.start; the skip count carries on)."""
+        if state["scaling"] == self.scaling:
+            self.scaler.load_state_dict(state["scaler"])
+        else:
+            self.scaler.skipped = int(state["scaler"]["skipped"])
+
     def summary(self) -> dict:
         return {
             "precision": self.name,
