@@ -1,0 +1,98 @@
+"""Mixed precision in whole runs: one skip decision on every layout, the telemetry and
+detectors it feeds, the underflow scenario, 16-bit accumulation named by check."""
+
+import json
+
+import pytest
+
+from conftest import make_config, run_cli
+from scaledrill.config.validate import validate_train
+from scaledrill.dist import LocalCollective
+from scaledrill.errors import ConfigError
+from scaledrill.telemetry import read_scalars
+from scaledrill.train.engine import Trainer
+
+# A start far above fp16's range and a large growth factor: overflows come and go.
+OVERFLOWING = ["task=teacher", "train.precision=fp16", "train.scaler.start=68719476736.0", "train.scaler.grow=256.0",
+               "train.scaler.shrink=0.25", "train.scaler.patience=3", "train.progress=false", "train.eval_every=0"]
+
+
+def test_every_layout_skips_the_same_steps(tmp_path):
+    """The decision is taken on the all-reduced gradient, which every process holds."""
+    common = [*OVERFLOWING, "train.scaler.start=16777216.0", "layout.workers=4", "layout.micro_batch=16", "train.steps=12",
+              "telemetry.detect.skip_storm=null", "telemetry.layer_every=4"]
+    seen = {}
+    for name, layout in {"one": ["layout.procs=1"], "gloo": ["layout.procs=2", "layout.backend=gloo"]}.items():
+        run_cli("run", *common, *layout, f"hydra.run.dir={tmp_path / name}", check=True)
+        summary = json.loads((tmp_path / name / "summary.json").read_text())
+        scalars = read_scalars(tmp_path / name / "run.sqlite")
+        seen[name] = (summary["skipped_steps"], summary["final_loss_scale"], list(scalars["skipped"][1]), list(scalars["loss_scale"][1]))
+        assert summary["precision"] == "fp16" and 0 < summary["skipped_steps"] < 12
+        assert "grad_norm" not in scalars or len(scalars["grad_norm"][0]) == 12 - summary["skipped_steps"]
+        assert 0.0 <= min(scalars["underflow_share"][1]) <= max(scalars["overflow_share"][1]) <= 1.0
+    assert seen["one"] == seen["gloo"]
+
+
+def test_an_overflow_storm_stops_the_run_with_an_incident(tmp_path):
+    # shrink 0.5 from 2^36 needs ~20 halvings to fit fp16: 3 skips in a row is a storm here.
+    run_cli("run", *OVERFLOWING, "train.scaler.shrink=0.5", "train.steps=20", "telemetry.detect.skip_storm=3",
+            "telemetry.detect.skip_window=5", f"hydra.run.dir={tmp_path}")
+    summary = json.loads((tmp_path / "summary.json").read_text())
+    assert summary["diverged"] and "overflow storm at step 2" in summary["stop_reason"]
+    assert (summary["skipped_steps"], summary["final_loss_scale"]) == (3, 2.0**33)  # 2^36 halved three times
+    incident = json.loads((tmp_path / "incident-2.json").read_text())
+    assert "overflow storm" in json.dumps(incident)
+
+
+def test_a_collapsing_scale_fires():
+    cfg = make_config(*OVERFLOWING, "train.scaler.start=4.0", "train.scaler.shrink=0.125", "task.loss.weight=1e6",
+                      "telemetry.detect.scale_floor=1.0", "telemetry.detect.skip_storm=null")
+    from scaledrill.telemetry.detectors import build_detectors
+
+    trainer, detectors = Trainer(cfg, LocalCollective()), build_detectors(cfg.telemetry)
+    reasons = []
+    for _ in range(4):
+        scalars = trainer.step().scalars()
+        reasons += [r for r in (d.observe(trainer.step_index - 1, scalars) for d in detectors) if r]
+    assert any("loss scale collapsed" in r for r in reasons)
+
+
+def scenario(*extra, steps=60):
+    cfg = make_config("+recipe=underflow", f"train.steps={steps}", *extra)
+    trainer = Trainer(cfg, LocalCollective())
+    records = [trainer.step() for _ in range(steps)]
+    return records
+
+
+def test_fp16_without_loss_scaling_stalls_where_dynamic_scaling_trains():
+    # Micikevicius et al. 2018 ("Mixed Precision Training", §3.2): gradients below fp16's
+    # smallest subnormal flush to zero unless the loss is scaled up first.
+    fp32 = scenario("train.precision=fp32")
+    stalled = scenario()  # the scenario as written: fp16, train.loss_scale=none
+    scaled = scenario("train.loss_scale=dynamic")
+    start = fp32[0].loss
+    assert min(r.precision["underflow_share"] for r in stalled) == 1.0  # every gradient value flushed
+    assert min(r.loss for r in stalled[-10:]) > 0.8 * start  # no progress (noise only: new batches each step)
+    assert scaled[-1].loss < 0.5 * start
+    assert scaled[-1].loss == pytest.approx(fp32[-1].loss, rel=0.05)  # scaling recovers the fp32 run
+    assert max(r.precision["underflow_share"] for r in scaled) < 0.5
+
+
+def test_check_names_16_bit_accumulation(tmp_path):
+    done = run_cli("check", "task=teacher", "layout.workers=2", "layout.accum=4", "train.accum_dtype=fp16",
+                   "check.paths=[accumulation]", "check.steps=2", f"hydra.run.dir={tmp_path}")
+    assert done.returncode == 1, done.stdout + done.stderr
+    (finding,) = json.loads((tmp_path / "check.json").read_text())["diagnosis"]
+    assert "accumulation in fp16" in finding["cause"] and "train.accum_dtype=fp32" in finding["fix"]
+
+
+@pytest.mark.parametrize(
+    "override, key",
+    [("train.precision=fp8", "train.precision"), ("train.accum_dtype=half", "train.accum_dtype"),
+     ("train.loss_scale=-2", "train.loss_scale"), ("train.scaler.shrink=1.5", "train.scaler.shrink"),
+     ("train.scaler.patience=0", "train.scaler.patience"), ("+train.scaler.factor=2", "train.scaler.factor")],
+)
+def test_bad_precision_settings_name_the_key(override, key):
+    with pytest.raises(ConfigError) as caught:
+        validate_train(make_config(override))
+    assert caught.value.key == key
