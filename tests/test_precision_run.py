@@ -96,3 +96,15 @@ def test_bad_precision_settings_name_the_key(override, key):
     with pytest.raises(ConfigError) as caught:
         validate_train(make_config(override))
     assert caught.value.key == key
+
+
+def test_check_under_fp16_matches_with_a_settled_scale_and_names_skips_otherwise(tmp_path):
+    common = ["check", "task=teacher", "layout.workers=4", "train.precision=fp16", "check.paths=[fused]", "check.steps=3"]
+    settled = run_cli(*common, "train.scaler.start=1024.0", f"hydra.run.dir={tmp_path / 'settled'}")
+    assert settled.returncode == 0, settled.stdout + settled.stderr  # scaling, autocast and unscaling match float64 within fp16's rule
+    report = json.loads((tmp_path / "settled" / "check.json").read_text())
+    assert report["paths"][0]["ok"]
+    skipping = run_cli(*common, f"hydra.run.dir={tmp_path / 'skipping'}")  # 65536 overflows on this model's first steps
+    assert skipping.returncode == 1
+    (finding,) = json.loads((tmp_path / "skipping" / "check.json").read_text())["diagnosis"]
+    assert finding["cause"].startswith("fp16 overflow") and "train.scaler.start" in finding["fix"]
