@@ -108,3 +108,22 @@ def test_check_under_fp16_matches_with_a_settled_scale_and_names_skips_otherwise
     assert skipping.returncode == 1
     (finding,) = json.loads((tmp_path / "skipping" / "check.json").read_text())["diagnosis"]
     assert finding["cause"].startswith("fp16 overflow") and "train.scaler.start" in finding["fix"]
+
+
+def test_a_resumed_run_continues_the_scale_bitwise(tmp_path):
+    from scaledrill.train import checkpoint
+
+    cfg = make_config(*OVERFLOWING, "train.scaler.start=16777216.0", "layout.workers=2", "layout.micro_batch=16")
+    straight = Trainer(cfg, LocalCollective())
+    records = [straight.step() for _ in range(10)]
+    first = Trainer(cfg, LocalCollective())
+    for _ in range(5):
+        first.step()
+    saved = checkpoint.save(first, None, tmp_path)
+    resumed = Trainer(cfg, LocalCollective())
+    checkpoint.restore(resumed, None, checkpoint.load(saved))
+    tail = [resumed.step() for _ in range(5)]
+    assert [(r.precision["loss_scale"], r.skipped) for r in tail] == [(r.precision["loss_scale"], r.skipped) for r in records[5:]]
+    assert any(r.skipped for r in records) and not all(r.skipped for r in records)
+    assert resumed.precision.scaler.state_dict() == straight.precision.scaler.state_dict()
+    assert all(bool((a == b).all()) for a, b in zip(resumed.params, straight.params))
