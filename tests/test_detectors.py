@@ -7,7 +7,7 @@ from omegaconf import OmegaConf
 from conftest import composed
 from scaledrill.errors import ConfigError
 from scaledrill.telemetry import validate
-from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, build_detectors
+from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, OverflowStorm, ScaleCollapse, build_detectors
 
 
 def healthy(steps=1000, seed=0):
@@ -80,13 +80,13 @@ def test_build_from_the_default_config():
     cfg = composed("telemetry", "default")
     validate(cfg)
     kinds = [type(d) for d in build_detectors(cfg)]
-    assert kinds == [NonFinite, LossSpike, GradExplosion]
+    assert kinds == [NonFinite, LossSpike, GradExplosion, OverflowStorm, ScaleCollapse]
     spike = build_detectors(cfg)[1]
     assert (spike.threshold, spike.window, spike.min_history) == (6.0, 50, 20)
 
 
 def test_null_disables():
-    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0}})
+    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0, "skip_storm": None, "scale_floor": None}})
     (only,) = build_detectors(cfg)
     assert isinstance(only, GradExplosion) and only.factor == 5.0
 
@@ -104,9 +104,30 @@ def test_null_disables():
         ({"flush_every": 0}, "telemetry.flush_every"),
         ({"noise_decay": 1.5}, "telemetry.noise_decay"),
         ({"incident": {"factor": 0.5}}, "telemetry.incident.factor"),
+        ({"detect": {"skip_storm": 0}}, "telemetry.detect.skip_storm"),
+        ({"detect": {"skip_storm": 8, "skip_window": 5}}, "telemetry.detect.skip_window"),
+        ({"detect": {"scale_floor": -1.0}}, "telemetry.detect.scale_floor"),
     ],
 )
 def test_bad_config_names_the_key(cfg, key):
     with pytest.raises(ConfigError) as err:
         validate(OmegaConf.create(cfg))
     assert err.value.key == key
+
+
+def test_overflow_storm_counts_skips_in_its_window_and_fires_once_per_storm():
+    storm = OverflowStorm(count=3, window=10)
+    skipped = {0, 1, 20, 25, 31, 40, 41, 42, 43, 44, 45}  # 20, 25, 31: never 3 within 10 steps
+    fired = [s for s in range(60) if storm.observe(s, {"skipped": float(s in skipped), "loss_scale": 8.0})]
+    assert fired == [42, 45]  # 40-42 is a storm; after firing the count starts again: 43-45
+    resumed = OverflowStorm(count=3, window=10)
+    resumed.load_state_dict(OverflowStorm(count=3, window=10, recent=[40, 41]).state_dict())
+    assert resumed.observe(42, {"skipped": 1.0}) is not None
+
+
+def test_scale_collapse_fires_when_the_scale_crosses_the_floor():
+    collapse = ScaleCollapse(floor=1.0)
+    scales = [4.0, 2.0, 1.0, 0.5, 0.25, 2.0, 0.5]
+    fired = [s for s, v in enumerate(scales) if collapse.observe(s, {"loss_scale": v})]
+    assert fired == [3, 6]  # crossing down twice; staying below does not fire again
+    assert collapse.observe(7, {"loss": 1.0}) is None  # runs without loss scaling log no scale

@@ -12,9 +12,14 @@ Checks, in order; each explains some of the failing paths and hands the rest on:
    BatchNorm (check.batchnorm=global, where the paths train with
    train.batchnorm=global): does the path match the reference with per-worker
    statistics instead? Then its BatchNorm never saw the other workers' samples;
-4. loss normalisation: is the task's loss a sum over units, i.e. is the loss of
+4. fp16 overflow: did the path skip steps while the dynamic loss scale settled?
+   The true batch never skips;
+5. 16-bit accumulation (train.accum_dtype=bf16|fp16): does the path match when
+   the micro-batch gradients are summed in fp32? Then the 16-bit sum lost the
+   small contributions;
+6. loss normalisation: is the task's loss a sum over units, i.e. is the loss of
    the whole batch the sum of the losses of its micro-batches?
-5. otherwise: a match at check.tolerance_scale=1 means the scale was set too
+7. otherwise: a match at check.tolerance_scale=1 means the scale was set too
    tight; a match when rerun in float64 means float32 rounding beyond the rule;
    else a real difference no check here names.
 """
@@ -135,6 +140,42 @@ class Diagnosis:
             "modules the engine did not apply the setting, a bug to report"))
 
     # 4. -----------------------------------------------------------------------
+    def overflow_skips(self) -> None:
+        skipping = {n: self.runs[n].skipped for n in self.open if self.runs[n].skipped}
+        if not skipping:
+            return
+        cfg = self.runner.cfg
+        start = (cfg.train.get("scaler") or {}).get("start", 65536.0)
+        self._explained(list(skipping), Finding(
+            "fp16 overflow: the path skipped steps while the dynamic loss scale settled, which the true batch never does",
+            "; ".join(f"{n} skipped step(s) {', '.join(map(str, s))}" for n, s in skipping.items())
+            + f" (the scale starts at train.scaler.start={start:g}); a skipped step leaves an inf gradient and unchanged parameters",
+            "to compare the plumbing, start the scale lower (train.scaler.start) or set train.loss_scale=none; "
+            "on the cluster a few skips at the start are normal, the overflow-storm detector watches for more"))
+
+    # 5. -----------------------------------------------------------------------
+    def accumulation_dtype(self) -> None:
+        cfg = self.runner.cfg
+        kind = cfg.train.get("accum_dtype", "fp32")
+        engine = [n for n in self.open if not n.startswith("step:")]
+        if kind == "fp32" or not engine:
+            return
+        wide = variant(cfg, **{"train.accum_dtype": "fp32"})
+        fixed = []
+        for name in engine:
+            rerun = self._rerun(name, cfg=wide)
+            if compare(name, rerun, self.ref, self.tol).ok:
+                fixed.append(name)
+        if not fixed:
+            return
+        bits = {"bf16": 8, "fp16": 11}[kind]
+        self._explained(fixed, Finding(
+            f"gradient accumulation in {kind}: a micro-batch's contribution smaller than the running sum's last bit is lost",
+            f"{', '.join(fixed)} match the true batch when the micro-batch gradients are summed in fp32 (train.accum_dtype=fp32); "
+            f"a {kind} sum keeps {bits} significant bits, so each addition rounds away about 2^-{bits} of the sum",
+            "accumulate in fp32 (train.accum_dtype=fp32); to save bandwidth, cast once for the wire (sync=fp16 or sync=bf16)"))
+
+    # 6. -----------------------------------------------------------------------
     def loss_normalisation(self) -> None:
         engine = [n for n in self.open if not n.startswith("step:")]
         if not engine:
@@ -161,7 +202,7 @@ class Diagnosis:
             "make the loss return the SUM of per-unit losses and count() the number of units (per_token=True for tokens); "
             "the engine divides once by the global count, as the true batch does"))
 
-    # 5. -----------------------------------------------------------------------
+    # 7. -----------------------------------------------------------------------
     def leftover(self) -> None:
         for name in list(self.open):
             cfg = self.runner.cfg
@@ -200,7 +241,7 @@ class Diagnosis:
         self.randomness()
         if self.open:
             step_checks(self)
-        for check in (self.stock_batchnorm, self.batchnorm, self.loss_normalisation, self.leftover):
+        for check in (self.stock_batchnorm, self.batchnorm, self.overflow_skips, self.accumulation_dtype, self.loss_normalisation, self.leftover):
             if self.open:
                 check()
         return self.findings

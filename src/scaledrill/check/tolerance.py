@@ -4,7 +4,9 @@ Rule (gradients, per layer l):   tol_l = C · u · √B · max|g_ref,l| · s
 Rule (parameters after step t):  tol_t = C · u · √B · t · max|θ_ref,t| · s
 
 u is the unit roundoff of the dtype the path computes in (2⁻²⁴ for float32, 2⁻⁵³
-for float64), B the global batch, s = check.tolerance_scale and C = 32. Why: each
+for float64; under train.precision=bf16 or fp16 the forward and backward run in
+16 bits, so u is 2⁻⁸ or 2⁻¹¹, the unit roundoff of an 8- or 11-bit significand;
+the reference stays float64), B the global batch, s = check.tolerance_scale and C = 32. Why: each
 gradient entry is a sum over B per-sample terms; with rounding errors of size
 u·|term| that do not all line up, the sum's error grows like √B·u times the
 entries' scale (the rule of thumb for recursive summation in Higham, "Accuracy and
@@ -27,8 +29,13 @@ from dataclasses import dataclass, field
 from scaledrill.layout import Layout
 
 C = 32.0
-UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53}
-RULE = "gradient: tol = C·u·√B·max|g_ref| per layer (max over the module's parameters); parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64), times check.tolerance_scale"
+UNIT_ROUNDOFF = {"float32": 2.0**-24, "float64": 2.0**-53, "bf16": 2.0**-8, "fp16": 2.0**-11}
+RULE = "gradient: tol = C·u·√B·max|g_ref| per layer (max over the module's parameters); parameters after step t: tol = C·u·√B·t·max|θ_ref,t|; C = 32, u = unit roundoff of the path's dtype (2^-24 float32, 2^-53 float64, 2^-8 bf16, 2^-11 fp16 under train.precision), times check.tolerance_scale"
+
+
+def unit_roundoff(train) -> float:
+    """u of what the paths compute in: train.precision when it is 16-bit, else train.dtype."""
+    return UNIT_ROUNDOFF[train.precision] if train.precision in ("bf16", "fp16") else UNIT_ROUNDOFF[train.dtype]
 
 
 @dataclass
@@ -77,7 +84,7 @@ class Tolerance:
 
     @classmethod
     def for_run(cls, cfg, scale: float) -> "Tolerance":
-        return cls(UNIT_ROUNDOFF[cfg.train.dtype], Layout.from_config(cfg.layout).global_batch, scale)
+        return cls(unit_roundoff(cfg.train), Layout.from_config(cfg.layout).global_batch, scale)
 
     def __call__(self, magnitude: float, steps: int = 1) -> float:
         return C * self.unit * math.sqrt(self.batch) * steps * magnitude * self.scale

@@ -17,6 +17,7 @@ class Trajectory:
     grads: list[torch.Tensor] = field(default_factory=list)  # the averaged gradient of the first step
     params: list[list[torch.Tensor]] = field(default_factory=list)  # params[t] after step t+1
     worker_spread: float = 0.0  # max |difference| between workers' copies (0 where there is one copy)
+    skipped: list[int] = field(default_factory=list)  # steps (from 1) skipped for an overflowed fp16 gradient
 
     def record(self, params: list[torch.Tensor]) -> None:
         """Called after each optimizer step with the parameters, whose .grad holds the averaged gradient."""

@@ -36,6 +36,16 @@ class LayoutConfig:
 
 
 @dataclass
+class ScalerConfig:
+    """Dynamic loss scaling (fp16): skip a step whose gradient overflowed and shrink the scale (common practice)."""
+
+    start: float = 65536.0  # the first scale
+    grow: float = 2.0  # multiply the scale by this after `patience` clean steps in a row
+    shrink: float = 0.5  # multiply it by this after an overflow
+    patience: int = 2000  # clean steps before the scale grows
+
+
+@dataclass
 class TrainConfig:
     steps: int = 200  # optimizer steps
     seed: int = 0
@@ -43,7 +53,11 @@ class TrainConfig:
     tail: str = "drop"  # epoch tail that does not fill a global batch: drop | carry
     checkpoint_every: int = 0  # steps between checkpoints; 0 = only at the end
     grads: str = "auto"  # auto | fused | vmap | loop
-    dtype: str = "float32"  # float32 | float64
+    dtype: str = "float32"  # float32 | float64: the master weights, their gradients and the optimizer state
+    precision: str = "fp32"  # fp32 | bf16 | fp16: forward and loss under torch.autocast (mixed precision)
+    accum_dtype: str = "fp32"  # fp32 | bf16 | fp16: what the micro-batch gradients are summed in (16 bits loses small ones)
+    loss_scale: Any = "dynamic"  # dynamic | none | a number: loss scaling; dynamic applies to fp16 only (bf16 needs none)
+    scaler: ScalerConfig = field(default_factory=ScalerConfig)
     batchnorm: str = "worker"  # BatchNorm statistics per worker | global (all W·b samples of the micro-step; fused path only)
     convert_batchnorm: bool = True  # stock BatchNorm1d/2d/3d/SyncBatchNorm of the model become per-worker GhostBatchNorm
     timeout_s: float = 60  # how long a collective waits for a peer before the run fails

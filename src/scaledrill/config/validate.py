@@ -17,6 +17,7 @@ def _positive_int(cfg, key: str, allow_zero: bool = False) -> None:
         raise ConfigError(f"train.{key}", rule, value)
 
 
+PRECISIONS = ("fp32", "bf16", "fp16")  # train.precision and train.accum_dtype (train/precision.py)
 BATCHNORM = ("worker", "global")  # whose samples BatchNorm's statistics come from
 
 
@@ -39,6 +40,28 @@ def validate_batchnorm(cfg) -> None:
         raise batchnorm_path_error(cause)
 
 
+
+def validate_precision(train) -> None:
+    """Raise ConfigError naming the first bad key among train.precision, accum_dtype, loss_scale, scaler."""
+    for key in ("precision", "accum_dtype"):
+        value = train[key]
+        if value not in PRECISIONS:
+            raise ConfigError(f"train.{key}", f"must be one of {', '.join(PRECISIONS)}", value)
+    scale = train.loss_scale
+    if scale not in ("dynamic", "none") and not (is_number(scale) and scale > 0):
+        raise ConfigError("train.loss_scale", "must be dynamic, none, or a positive number (a fixed scale)", scale)
+    s = train.scaler
+    rules = {
+        "start": (lambda v: is_number(v) and v > 0, "must be a positive number"),
+        "grow": (lambda v: is_number(v) and v > 1, "must be a number above 1"),
+        "shrink": (lambda v: is_number(v) and 0 < v < 1, "must lie strictly between 0 and 1"),
+        "patience": (lambda v: is_whole(v) and v >= 1, "must be a whole number of at least 1"),
+    }
+    for key, (ok, rule) in rules.items():
+        if not ok(s[key]):
+            raise ConfigError(f"train.scaler.{key}", rule, s[key])
+
+
 def validate_train(cfg) -> None:
     _positive_int(cfg, "steps")
     _positive_int(cfg, "eval_every", allow_zero=True)
@@ -51,6 +74,7 @@ def validate_train(cfg) -> None:
         raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", cfg.train.grads)
     if cfg.train.dtype not in ("float32", "float64"):
         raise ConfigError("train.dtype", "must be float32 or float64", cfg.train.dtype)
+    validate_precision(cfg.train)
     timeout = cfg.train.timeout_s
     if not is_number(timeout) or timeout <= 0:
         raise ConfigError("train.timeout_s", "must be a positive number of seconds", timeout)

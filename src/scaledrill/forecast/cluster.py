@@ -6,7 +6,9 @@ dotted key and the rule it broke.
 
 Units: bandwidth in GB/s with 1 GB = 10⁹ bytes, so β = 1 / (GB/s · 10⁹) seconds
 per byte; latency in microseconds, so α = µs · 10⁻⁶ seconds. `peak_tflops` is one
-device's peak; `inter_bandwidth_gbps` is what one device gets across nodes (its
+device's peak, per precision ({fp32: .., bf16: .., fp16: ..}; devices reach several
+times their fp32 peak in 16 bits), and `precision` picks the one the run trains in
+(a single number is taken as the peak of every precision); `inter_bandwidth_gbps` is what one device gets across nodes (its
 share of the node's network), which is what the two-level model needs.
 """
 
@@ -22,7 +24,7 @@ CLUSTER_KEYS = (
     "intra_bandwidth_gbps", "intra_latency_us", "inter_bandwidth_gbps", "inter_latency_us",
     "algorithm", "overlap", "price_per_device_hour",
 )  # fmt: skip
-INPUT_KEYS = ("flops_per_sample", "grad_bytes", "compression_ratio", "ladder", "run")
+INPUT_KEYS = ("precision", "flops_per_sample", "grad_bytes", "compression_ratio", "ladder", "run")
 
 
 def _key(name: str) -> str:
@@ -54,6 +56,7 @@ class Cluster:
     algorithm: str
     overlap: float  # share of the all-reduce that can hide behind the backward, [0, 1]
     price_per_device_hour: float
+    precision: str = "fp32"  # the precision peak_tflops was taken for
 
     def __post_init__(self):
         _count("devices", self.devices)
@@ -123,4 +126,25 @@ def validate(node: Mapping) -> Cluster:
     for name in ("ladder", "run"):
         if values[name] is not None and not isinstance(values[name], str):
             raise ConfigError(_key(name), "must be null or a path", values[name])
-    return Cluster(**{name: values[name] for name in CLUSTER_KEYS})
+    precision = values["precision"] or "fp32"
+    values["peak_tflops"] = peak_of(values["peak_tflops"], precision)
+    return Cluster(**{name: values[name] for name in CLUSTER_KEYS}, precision=precision)
+
+
+PRECISIONS = ("fp32", "bf16", "fp16")
+
+
+def peak_of(peak, precision: str):
+    """One device's peak TFLOP/s in `precision`, from a number or a per-precision mapping."""
+    if precision not in PRECISIONS:
+        raise ConfigError(_key("precision"), f"must be one of {', '.join(PRECISIONS)}", precision)
+    if not isinstance(peak, Mapping):
+        return peak  # one number: the peak of every precision (older cluster descriptions)
+    unknown = sorted(set(peak) - set(PRECISIONS))
+    if unknown:
+        raise ConfigError(_key(f"peak_tflops.{unknown[0]}"), f"is not a precision; give peaks for {', '.join(PRECISIONS)}", None)
+    if peak.get(precision) is None:
+        raise ConfigError(
+            _key("peak_tflops"), f"has no peak for forecast.precision={precision}; add forecast.peak_tflops.{precision}", dict(peak)
+        )
+    return peak[precision]

@@ -65,7 +65,7 @@ def render_forecast(doc: dict) -> Table:
     """A rich table of `forecast_json`'s document, the caution as its caption."""
     c = doc["assumptions"]["cluster"]
     title = (
-        f"{c['nodes']} nodes × {c['devices_per_node']} devices, {c['peak_tflops']:g} TFLOP/s at "
+        f"{c['nodes']} nodes × {c['devices_per_node']} devices, {c['peak_tflops']:g} TFLOP/s ({c.get('precision', 'fp32')}) at "
         f"{c['utilization']:.0%}, {c['algorithm']} all-reduce, overlap {c['overlap']:.0%}"
     )
     table = Table(title=title, caption=doc["caution"])

@@ -103,6 +103,8 @@ class GhostBatchNorm(nn.Module):
         # steps 1-2 in one pass forward and one backward (composed ops took ~10 passes).
         folded = x.reshape(groups, g, C, *rest).transpose(0, 1).reshape(g, groups * C, *rest)
         weight, bias = (None, None) if self.weight is None else (self.weight.repeat(groups), self.bias.repeat(groups))
+        if weight is not None and weight.dtype != x.dtype:  # under 16-bit autocast: vmap's batch_norm rule wants one dtype
+            weight, bias = weight.to(x.dtype), bias.to(x.dtype)
         y = nn.functional.batch_norm(folded, None, None, weight, bias, training=True, eps=self.eps)
         with torch.no_grad():  # step 3
             var, mean = torch.var_mean(folded, dim=[0, *range(2, folded.dim())], correction=0)

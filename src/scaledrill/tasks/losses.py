@@ -47,12 +47,19 @@ class SumOfOutputs:
 
 
 class MSESum:
-    """Regression: Σ over samples of the squared error summed over outputs."""
+    """Regression: Σ over samples of the squared error summed over outputs, times `weight`.
+
+    A small weight (an auxiliary term's coefficient, or a loss normalised by a large
+    count) makes every gradient small by the same factor: what fp16 underflows on."""
 
     per_token = False
 
+    def __init__(self, weight: float = 1.0):
+        self.weight = float(weight)
+
     def __call__(self, output, batch):
-        return (output - batch["target"]).square().sum()
+        total = (output - batch["target"]).square().sum()
+        return total if self.weight == 1.0 else total * self.weight
 
     def count(self, batch):
         return _count(batch["target"].shape[0])

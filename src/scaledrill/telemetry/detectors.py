@@ -13,6 +13,13 @@ its own counter of firings and never prints; the engine decides what to do
   Median and MAD ignore the occasional bad batch that a mean and standard deviation
   would absorb. One-sided: a falling loss never fires.
 - GradExplosion: the gradient norm exceeds `factor` times its trailing median.
+- OverflowStorm: `count` steps skipped for an overflowed fp16 gradient within
+  `window` steps. A few skips while dynamic loss scaling finds its level are
+  normal (Micikevicius et al. 2018, "Mixed Precision Training"); a storm means
+  the scale cannot settle: the gradients' range no longer fits fp16.
+- ScaleCollapse: the loss scale fell below `floor`. Below 1 the scale shrinks the
+  gradients instead of lifting them out of fp16's underflow range: what overflows
+  is the forward pass or the loss itself, and scaling cannot help.
 
 Tuning: the defaults (z > 6 over 50 steps, norm > 10× median) are common practice
 for catching real blow-ups while staying quiet on ordinary mini-batch noise; lower
@@ -118,7 +125,7 @@ class GradExplosion(_Trailing):
         reason = None
         if self._ready(value):
             med = statistics.median(self.history)
-            if value > self.factor * med:
+            if med > 0 and value > self.factor * med:  # a zero median (gradients flushed to zero) has no scale
                 self.fired += 1
                 reason = (
                     f"{self.key} explosion at step {step}: {value:.6g} is {value / med:.1f}x "
@@ -127,6 +134,56 @@ class GradExplosion(_Trailing):
         if value is not None and math.isfinite(value):
             self._push(value)
         return reason
+
+
+@dataclass
+class OverflowStorm:
+    count: int = 10
+    window: int = 50
+    recent: list[int] = field(default_factory=list)  # steps skipped within the window
+    fired: int = 0
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        if not scalars.get("skipped"):
+            return None
+        self.recent = [s for s in self.recent if s > step - self.window] + [step]
+        if len(self.recent) < self.count:
+            return None
+        self.fired += 1
+        first, self.recent = self.recent[0], []  # one firing per storm
+        return (
+            f"overflow storm at step {step}: {self.count} steps skipped for an inf/NaN gradient since step {first} "
+            f"(limit {self.count} in {self.window} steps); the loss scale is {scalars.get('loss_scale', float('nan')):g}"
+        )
+
+    def state_dict(self) -> dict:
+        return {"recent": list(self.recent), "fired": self.fired}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.recent, self.fired = list(state["recent"]), state["fired"]
+
+
+@dataclass
+class ScaleCollapse:
+    floor: float = 1.0
+    below: bool = False  # fire when the scale crosses the floor, not on every step below it
+    fired: int = 0
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        scale = scalars.get("loss_scale")
+        if scale is None:
+            return None
+        was, self.below = self.below, scale < self.floor
+        if not self.below or was:
+            return None
+        self.fired += 1
+        return f"loss scale collapsed at step {step}: {scale:g} is below the floor {self.floor:g}"
+
+    def state_dict(self) -> dict:
+        return {"below": self.below, "fired": self.fired}
+
+    def load_state_dict(self, state: dict) -> None:
+        self.below, self.fired = bool(state["below"]), state["fired"]
 
 
 def _is_number(v) -> bool:
@@ -158,6 +215,13 @@ def validate_detect(cfg_telemetry) -> None:
             f"must be a whole number no smaller than telemetry.detect.min_history={d['min_history']}",
             d["spike_window"],
         )
+    if d["skip_storm"] is not None and not (is_whole(d["skip_storm"]) and d["skip_storm"] >= 1):
+        raise ConfigError("telemetry.detect.skip_storm", "must be a whole number of at least 1, or null to turn it off", d["skip_storm"])
+    storm = d["skip_storm"] or 1
+    if not (is_whole(d["skip_window"]) and d["skip_window"] >= storm):
+        raise ConfigError("telemetry.detect.skip_window", f"must be a whole number no smaller than telemetry.detect.skip_storm={storm}", d["skip_window"])
+    if d["scale_floor"] is not None and not (_is_number(d["scale_floor"]) and d["scale_floor"] > 0):
+        raise ConfigError("telemetry.detect.scale_floor", "must be a positive number, or null to turn it off", d["scale_floor"])
     on_trigger = cfg_telemetry.get("on_trigger", DEFAULTS.on_trigger)
     if on_trigger not in ("stop", "continue"):
         raise ConfigError("telemetry.on_trigger", "must be stop or continue", on_trigger)
@@ -175,4 +239,8 @@ def build_detectors(cfg_telemetry) -> list[Detector]:
         out.append(LossSpike(threshold=float(d["spike_z"]), **window))
     if d["grad_factor"] is not None:
         out.append(GradExplosion(factor=float(d["grad_factor"]), **window))
+    if d["skip_storm"] is not None:
+        out.append(OverflowStorm(count=d["skip_storm"], window=d["skip_window"]))
+    if d["scale_floor"] is not None:
+        out.append(ScaleCollapse(floor=float(d["scale_floor"])))
     return out

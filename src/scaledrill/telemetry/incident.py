@@ -37,7 +37,8 @@ def layer_trips(history: History, factor: float = 3.0, min_points: int = 3) -> d
     series: dict[str, list[tuple[int, float]]] = {}
     for step, layers in history:
         for layer, stats in layers.items():
-            series.setdefault(layer, []).append((step, stats["update_ratio"]))
+            if "update_ratio" in stats:  # a step skipped for overflow records no update
+                series.setdefault(layer, []).append((step, stats["update_ratio"]))
     trips = {}
     for layer, points in series.items():
         for i in range(min_points, len(points)):

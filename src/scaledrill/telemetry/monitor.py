@@ -33,9 +33,14 @@ class StepRecord:
     sync: dict = field(default_factory=dict)
     interrupt: bool = False  # some process was asked to stop (SIGINT/SIGTERM)
     signum: int = 0  # which signal, for the exit status (128 + it)
+    precision: dict = field(default_factory=dict)  # loss_scale, skipped, underflow/overflow shares (train/precision.py)
+    skipped: bool = False  # the step's scaled gradient overflowed; no update was applied
 
     def scalars(self) -> dict[str, float]:
-        out = {"loss": self.loss, "lr": self.lr, "grad_norm": self.grad_norm, "grad_norm_clipped": self.clipped_norm}
+        out = {"loss": self.loss, "lr": self.lr}
+        if not self.skipped:  # a skipped step has no gradient norm: the overflow is reported, not a divergence
+            out.update(grad_norm=self.grad_norm, grad_norm_clipped=self.clipped_norm)
+        out.update(self.precision)
         for key in ("cosine_to_exact", "rel_error_to_exact", "residual_norm", "wire_bytes_per_worker", "compression_ratio"):
             if key in self.sync:
                 out[key] = float(self.sync[key])

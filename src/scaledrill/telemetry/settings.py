@@ -15,6 +15,9 @@ class DetectConfig:
     spike_window: int = 50  # trailing steps behind the median (loss spike and gradient explosion)
     min_history: int = 20  # steps seen before the spike and explosion checks start
     grad_factor: Optional[float] = 10.0  # gradient norm above this many times its trailing median; null = off
+    skip_storm: Optional[int] = 10  # fire when this many steps are skipped for an overflowed gradient (loss scaling) ...; null = off
+    skip_window: int = 50  # ... within this many steps
+    scale_floor: Optional[float] = 1.0  # fire when the loss scale falls below this; null = off
 
 
 @dataclass

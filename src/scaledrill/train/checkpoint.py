@@ -53,6 +53,7 @@ def collect(trainer, monitor) -> dict:
         "optimizer_class": type(trainer.optimizer).__name__,
         "sync": sync_state,
         "monitor": monitor.state_dict() if monitor is not None else None,
+        "precision": trainer.precision.state_dict(),  # the loss scale and its streak
         "rng": torch.get_rng_state(),
     }
 
@@ -139,5 +140,7 @@ def restore(trainer, monitor, state: dict) -> None:
     trainer.sync.load_state_dict({k: v[rows] if k.startswith("worker.") else v for k, v in state["sync"].items()})
     if monitor is not None and state.get("monitor") is not None:
         monitor.load_state_dict(state["monitor"])
+    if state.get("precision") is not None:  # checkpoints from before mixed precision carry none
+        trainer.precision.load_state_dict(state["precision"])
     torch.set_rng_state(state["rng"])
     trainer.step_index = int(state["step"])

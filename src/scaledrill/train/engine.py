@@ -36,6 +36,7 @@ from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
 from scaledrill.train.grads import GradComputer, flatten_params, write_grads
 from scaledrill.train.memory import check_fits
+from scaledrill.train.precision import Precision
 from scaledrill.train.signals import StopFlag
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
@@ -71,6 +72,8 @@ class Trainer:
             # A threaded kernel splits its sums by thread count, and the launcher gives each process
             # cores/P threads: one thread in every process keeps each worker's row the same for any P.
             torch.set_num_threads(1)
+        self.precision = Precision(cfg.train)  # autocast, 16-bit accumulation, loss scaling
+        self.grads.accum_dtype = self.precision.accum_dtype
         self.path = self._choose_path(cfg.train.grads)
         check_fits(self)  # before the first step allocates
         validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
@@ -164,7 +167,10 @@ class Trainer:
         noise = self._noise_due(step)
         path = "vmap" if noise and self.path == "fused" else self.path
         self.grads.step = step
-        result = self.grads.compute(micro, scale, path)
+        S = self.precision.loss_scale  # 1 unless the loss is scaled
+        with self.precision.autocast():
+            result = self.grads.compute(micro, scale * S, path)
+        result.local = self.precision.widen(result.local, self.dtype)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
         shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
@@ -174,26 +180,33 @@ class Trainer:
         W = self.layout.workers
         small_sq = big_sq = None
         if noise:
-            small_sq = float(scalars[1]) / W
-            big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum())
+            small_sq = float(scalars[1]) / W / S**2
+            big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum()) / S**2
 
         write_grads(average, self.params)
-        clip = self.clip_norm
-        grad_norm = clip_by_global_norm(self.params, clip)
-        lr = self.recipe.lr_at(step)
-        set_lr(self.optimizer, lr)
         layers_due = self._layers_due(step)
-        before = [p.detach().clone() for p in self.params] if layers_due else None
-        self.optimizer.step()
-        layers = None
-        if layers_due:
-            updates = [p.detach() - b for p, b in zip(self.params, before)]
-            layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
+        verdict = self.precision.after_reduce(average, [p.grad for p in self.params] if layers_due else None, self.grads.names)
+        clip = self.clip_norm
+        lr = self.recipe.lr_at(step)
+        layers, grad_norm = None, float("nan")
+        if verdict.apply:  # else an inf/NaN in the scaled gradient: skip the step (train/precision.py)
+            grad_norm = clip_by_global_norm(self.params, clip)
+            set_lr(self.optimizer, lr)
+            before = [p.detach().clone() for p in self.params] if layers_due else None
+            self.optimizer.step()
+            if layers_due:
+                updates = [p.detach() - b for p, b in zip(self.params, before)]
+                layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
+        else:
+            small_sq = big_sq = None
+        for name, shares in (verdict.layers or {}).items():
+            layers = layers or {}
+            layers.setdefault(name, {}).update(shares)
         trust = getattr(self.optimizer, "trust_ratios", None)
         self.step_index += 1
         return StepRecord(
             step=step,
-            loss=float(scalars[0]) / W,
+            loss=float(scalars[0]) / W / S,
             lr=lr,
             grad_norm=float(grad_norm),
             clipped_norm=min(float(grad_norm), clip) if clip else float(grad_norm),
@@ -204,6 +217,8 @@ class Trainer:
             sync=dict(self.sync.stats),
             interrupt=bool(scalars[2] > 0),
             signum=(flag.signum if flag else 0) or _one_signal(float(scalars[2]), self.comm.size),
+            precision=verdict.scalars,
+            skipped=not verdict.apply,
         )
 
     def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
@@ -228,7 +243,8 @@ class Trainer:
             for start in range(0, test.size, chunk):
                 index = torch.arange(start, min(start + chunk, test.size))
                 batch = cast_batch(test.take(index), self.dtype)
-                out = self.model(batch["input"])
+                with self.precision.autocast():
+                    out = self.model(batch["input"])
                 units += float(loss.count(batch))
                 for k, v in loss.metrics(out, batch).items():
                     sums[k] = sums.get(k, 0.0) + float(v)
@@ -322,6 +338,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
         "wall_seconds": time.perf_counter() - started,
     }
     summary.update(monitor.summary())
+    summary.update(trainer.precision.summary())
     summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
     return summary
 

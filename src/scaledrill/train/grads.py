@@ -65,10 +65,14 @@ class GradComputer:
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
         self.vmap_failure = next((f"{type(m).__name__} has no per-worker (vmap) kernel" for m in model.modules()
                                   if isinstance(m, NO_VMAP)), None)
+        self.accum_dtype = None  # dtype the micro-batch gradients are summed in; None = the parameters' (train/precision.py)
+
+    def _accumulator(self, rows: int) -> torch.Tensor:
+        return torch.zeros(rows, self.numel, dtype=self.accum_dtype or self.params[0].dtype)
 
     # -- fused ---------------------------------------------------------------
     def fused(self, micro: list[dict], scale: float) -> StepGrads:
-        out = torch.zeros(1, self.numel, dtype=self.params[0].dtype)
+        out = self._accumulator(1)
         views = _views(out[0], self.params)
         total = 0.0
         for batch in micro:
@@ -127,7 +131,7 @@ class GradComputer:
             return value, value
 
         per_worker = vmap(grad(worker_loss, has_aux=True), in_dims=(None, 0, 0))
-        out = torch.zeros(self.V, self.numel, dtype=self.params[0].dtype)
+        out = self._accumulator(self.V)
         total = 0.0
         for batch in micro:
             grads, values = per_worker(params, buffers, self._split(batch))
@@ -141,7 +145,7 @@ class GradComputer:
         named = dict(self.model.named_buffers())
         start = {n: named[n].detach().clone() for n in self.buffer_names}
         ends = {n: torch.zeros_like(t) for n, t in start.items()}
-        out = torch.zeros(self.V, self.numel, dtype=self.params[0].dtype)
+        out = self._accumulator(self.V)
         total = 0.0
         split = [self._split(batch) for batch in micro]
         for v in range(self.V):
