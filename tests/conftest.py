@@ -10,7 +10,7 @@ from hydra.errors import HydraException
 from omegaconf import OmegaConf
 
 import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
-from scaledrill.config.keys import composition_error
+from scaledrill.config.keys import composition_error, refuse_unknown
 
 ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
@@ -22,9 +22,11 @@ def make_config(*overrides: str, name: str = "run"):
     composition error (unknown key, wrong type) becomes the ConfigError the command line reports."""
     with initialize_config_dir(CONFIGS, version_base=None):
         try:
-            return compose(name, overrides=list(overrides))
+            cfg = compose(name, overrides=list(overrides))
         except HydraException as err:
             raise composition_error(err) from err
+    refuse_unknown(cfg)  # an addition (+train.epochs=90) no schema declares, as the command line refuses it
+    return cfg
 
 
 def composed(group: str, option: str):

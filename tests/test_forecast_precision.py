@@ -1,19 +1,14 @@
 """forecast.peak_tflops per precision: the run's precision picks the peak the compute time uses."""
 
-from pathlib import Path
-
 import pytest
-from omegaconf import OmegaConf
+from conftest import composed
 
 from scaledrill.errors import ConfigError
 from scaledrill.forecast.cluster import validate
 from scaledrill.forecast.project import project_step
 
-EXAMPLE = Path(__file__).resolve().parents[1] / "src" / "scaledrill" / "conf" / "forecast" / "example.yaml"
-
-
 def example(**changes):
-    node = OmegaConf.load(EXAMPLE)
+    node = composed("forecast", "example")  # the schema's defaults, then the example's values
     for key, value in changes.items():
         node[key] = value
     return node

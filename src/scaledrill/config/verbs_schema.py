@@ -99,7 +99,8 @@ class ClusterConfig:
 
     devices: int = MISSING
     devices_per_node: int = MISSING
-    peak_tflops: float = MISSING  # one device's peak
+    precision: str = "fp32"  # fp32 | bf16 | fp16: what the run trains in (train.precision); picks the peak
+    peak_tflops: Any = MISSING  # one device's peak: a number, or a mapping per precision {fp32: .., bf16: ..}
     utilization: float = MISSING  # share of peak the model reaches, (0, 1]
     intra_bandwidth_gbps: float = MISSING  # device to device inside a node
     intra_latency_us: float = MISSING
