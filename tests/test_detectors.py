@@ -7,7 +7,7 @@ from omegaconf import OmegaConf
 
 from scaledrill.errors import ConfigError
 from scaledrill.telemetry import validate
-from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, build_detectors
+from scaledrill.telemetry.detectors import GradExplosion, InitialRise, LossSpike, NonFinite, build_detectors
 
 DEFAULT_YAML = Path(__file__).parents[1] / "src" / "scaledrill" / "conf" / "telemetry" / "default.yaml"
 
@@ -25,7 +25,7 @@ def run(detector, series):
     return [(step, r) for step, s in enumerate(series) if (r := detector.observe(step, s)) is not None]
 
 
-@pytest.mark.parametrize("make", [NonFinite, LossSpike, GradExplosion])
+@pytest.mark.parametrize("make", [NonFinite, LossSpike, GradExplosion, InitialRise])
 def test_quiet_on_a_healthy_run(make):
     d = make()
     assert run(d, healthy()) == []
@@ -53,7 +53,7 @@ def test_loss_spike_threshold_is_the_robust_z():
     # robust sigma 0.14826 (MAD × 1.4826 is the Gaussian sigma; Rousseeuw and Croux 1993, from memory).
     base = [{"loss": 1.0 + 0.2 * (i % 2)} for i in range(50)]
     sigma = 0.1 * 1.4826
-    below, above = (LossSpike(threshold=6.0, window=50, min_history=50) for _ in range(2))
+    below, above = (LossSpike(threshold=6.0, ratio=1.0, share=0.0, window=50, min_history=50) for _ in range(2))
     assert run(below, base + [{"loss": 1.1 + 5.9 * sigma}]) == []
     assert [s for s, _ in run(above, base + [{"loss": 1.1 + 6.1 * sigma}])] == [50]
 
@@ -82,13 +82,13 @@ def test_build_from_the_default_config():
     cfg = OmegaConf.load(DEFAULT_YAML)
     validate(cfg)
     kinds = [type(d) for d in build_detectors(cfg)]
-    assert kinds == [NonFinite, LossSpike, GradExplosion]
+    assert kinds == [NonFinite, LossSpike, GradExplosion, InitialRise]
     spike = build_detectors(cfg)[1]
-    assert (spike.threshold, spike.window, spike.min_history) == (6.0, 50, 20)
+    assert (spike.threshold, spike.ratio, spike.share, spike.window, spike.min_history) == (6.0, 2.0, 0.1, 50, 20)
 
 
 def test_null_disables():
-    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0}})
+    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0, "initial_factor": None}})
     (only,) = build_detectors(cfg)
     assert isinstance(only, GradExplosion) and only.factor == 5.0
 
@@ -101,6 +101,9 @@ def test_null_disables():
         ({"detect": {"nonfinite": "yes"}}, "telemetry.detect.nonfinite"),
         ({"detect": {"spike_window": 10}}, "telemetry.detect.spike_window"),  # below min_history=20
         ({"detect": {"spike_zz": 3.0}}, "telemetry.detect.spike_zz"),
+        ({"detect": {"spike_ratio": 0.5}}, "telemetry.detect.spike_ratio"),
+        ({"detect": {"spike_share": 1.5}}, "telemetry.detect.spike_share"),
+        ({"detect": {"initial_factor": 1.0}}, "telemetry.detect.initial_factor"),
         ({"on_trigger": "halt"}, "telemetry.on_trigger"),
         ({"layer_every": -1}, "telemetry.layer_every"),
         ({"flush_every": 0}, "telemetry.flush_every"),
@@ -112,3 +115,50 @@ def test_bad_config_names_the_key(cfg, key):
     with pytest.raises(ConfigError) as err:
         validate(OmegaConf.create(cfg))
     assert err.value.key == key
+
+
+def converged(steps=300, seed=0):
+    """A loss that fell from 2.3 to ~0.01 and stays there with heavy-tailed batch noise: most
+    batches near 0.006, one in ~25 holding a misfit sample at 5-10x that (as a trained digits
+    classifier shows), and gradient norms with the same kind of tail."""
+    rng = np.random.default_rng(seed)
+    series = [{"loss": 2.3, "grad_norm": 1.2}]
+    for _ in range(steps):
+        misfit = rng.random() < 0.04
+        loss = 0.006 * (1 + 0.3 * rng.standard_normal()) * (rng.uniform(5, 10) if misfit else 1.0)
+        grad = 0.05 * np.exp(0.3 * rng.standard_normal()) * (rng.uniform(8, 14) if misfit else 1.0)
+        series.append({"loss": abs(loss), "grad_norm": grad})
+    return series
+
+
+def test_no_alarm_near_convergence_but_the_z_score_alone_would_fire():
+    series = converged()
+    assert run(LossSpike(), series) == [] and run(GradExplosion(), series) == []
+    # Without the floors, the same series trips: the tiny MAD turns ordinary misfit batches into many sigmas.
+    assert run(LossSpike(ratio=1.0, share=0.0), series) != []
+    assert run(GradExplosion(first=0.0), series) != []
+
+
+def test_a_real_spike_near_convergence_still_fires():
+    series = converged()
+    series[200]["loss"] = 0.5  # gives back 0.49/2.29 = 21% of the fall: past the 10% share
+    assert [s for s, _ in run(LossSpike(), series)] == [200]
+    small = converged()
+    small[200]["loss"] = 0.1  # 16x the median, but only 4% of the fall
+    assert run(LossSpike(), small) == []
+
+
+def test_ratio_floor():
+    base = [{"loss": 1.0 + 0.01 * (i % 2)} for i in range(50)]  # median 1.005, robust sigma 0.0074
+    assert run(LossSpike(ratio=2.0, share=0.0, min_history=50), base + [{"loss": 1.9}]) == []  # 120 sigma, 1.89x
+    assert [s for s, _ in run(LossSpike(ratio=2.0, share=0.0, min_history=50), base + [{"loss": 2.1}])] == [50]
+
+
+def test_initial_rise_fires_before_any_window_is_ready():
+    series = [{"loss": 13.1}, {"loss": 12.9}, {"loss": 20.0}, {"loss": 27.0}, {"loss": 146.0}]
+    fired = run(InitialRise(factor=2.0), series)
+    assert [s for s, _ in fired] == [3, 4]  # 27.0 > 2 × 13.1; 20.0 is not
+    assert "first loss 13.1" in fired[0][1]
+    resumed = InitialRise(factor=2.0)
+    resumed.load_state_dict(InitialRise(factor=2.0, initial=13.1).state_dict())
+    assert resumed.observe(9, {"loss": 26.3}) is not None
