@@ -27,7 +27,7 @@ from scaledrill.sync import build_sync
 from scaledrill.sync.summary import sync_summary
 from scaledrill.tasks.base import Task, build_task
 from scaledrill.tasks.batches import cast_batch, check_finite
-from scaledrill.tasks.sampler import Sampler
+from scaledrill.tasks.sampler import make_sampler
 from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
@@ -54,7 +54,7 @@ class Trainer:
         set_group_size(self.model, self.layout.micro_batch)
         self.model.train()
 
-        self.sampler = Sampler(self.task.data.train.size, self.layout, cfg.train.seed, cfg.train.tail)
+        self.sampler = make_sampler(self.task.data.train.size, self.layout, cfg.train)
         self.recipe = resolve_recipe(cfg, self.layout, self.task.data.train.size, cfg.train.tail)
         self.optimizer = build_optimizer(list(self.model.named_parameters()), cfg.optim)
         self.params = [p for p in self.model.parameters()]
