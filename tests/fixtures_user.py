@@ -14,3 +14,38 @@ class BatchNormMLP(nn.Module):
 
     def forward(self, x):
         return self.net(x)
+
+
+class TinyNet(nn.Module):
+    """A small classifier a user might train with a plain DDP script."""
+
+    def __init__(self, in_dim: int = 4, hidden: int = 16, classes: int = 3):
+        super().__init__()
+        self.hidden = nn.Linear(in_dim, hidden)
+        self.out = nn.Linear(hidden, classes)
+
+    def forward(self, x):
+        return self.out(torch.tanh(self.hidden(x)))
+
+
+def blobs(size: int = 96, in_dim: int = 4, classes: int = 3, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
+    """Gaussian inputs labelled by a fixed random linear map: the job's whole training set."""
+    gen = torch.Generator().manual_seed(seed)
+    x = torch.randn(size, in_dim, generator=gen)
+    y = (x @ torch.randn(in_dim, classes, generator=gen)).argmax(-1)
+    return x, y
+
+
+class _Indexed:
+    def __init__(self, x, y):
+        self.x, self.y, self.size = x, y, x.shape[0]
+
+    def take(self, index):
+        return {"input": self.x[index], "target": self.y[index]}
+
+
+class BlobData:
+    """The same training set seen through scaledrill's data protocol (a `train` with `size` and `take`)."""
+
+    def __init__(self, size: int = 96, seed: int = 0):
+        self.train = _Indexed(*blobs(size, seed=seed))
