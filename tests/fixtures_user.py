@@ -19,13 +19,14 @@ class BatchNormMLP(nn.Module):
 class TinyNet(nn.Module):
     """A small classifier a user might train with a plain DDP script."""
 
-    def __init__(self, in_dim: int = 4, hidden: int = 16, classes: int = 3):
+    def __init__(self, in_dim: int = 4, hidden: int = 16, classes: int = 3, activation: str = "tanh"):
         super().__init__()
         self.hidden = nn.Linear(in_dim, hidden)
         self.out = nn.Linear(hidden, classes)
+        self.activation = getattr(torch, activation)
 
     def forward(self, x):
-        return self.out(torch.tanh(self.hidden(x)))
+        return self.out(self.activation(self.hidden(x)))
 
 
 def blobs(size: int = 96, in_dim: int = 4, classes: int = 3, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
@@ -49,3 +50,12 @@ class BlobData:
 
     def __init__(self, size: int = 96, seed: int = 0):
         self.train = _Indexed(*blobs(size, seed=seed))
+
+
+class CorruptedBlobData:
+    """BlobData with one corrupted sample: its input scaled by `factor`, as a bad record in a shard would be."""
+
+    def __init__(self, size: int = 512, bad: int = 0, factor: float = 1e4, seed: int = 0):
+        x, y = blobs(size, seed=seed)
+        x[bad] *= factor
+        self.train = _Indexed(x, y)

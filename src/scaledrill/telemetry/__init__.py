@@ -35,6 +35,8 @@ def validate(cfg_telemetry) -> None:
     _count(cfg_telemetry, "layer_every", 10, 0)
     _count(cfg_telemetry, "flush_every", 50, 1)
     _count(cfg_telemetry, "noise_every", 25, 0)
+    if not isinstance(cfg_telemetry.get("blame", True), bool):
+        raise ConfigError("telemetry.blame", "must be true or false", cfg_telemetry.get("blame"))
     if not isinstance(cfg_telemetry.get("tensorboard", False), bool):
         raise ConfigError("telemetry.tensorboard", "must be true or false", cfg_telemetry.get("tensorboard"))
     NoiseScale(decay=cfg_telemetry.get("noise_decay", 0.95))  # checks telemetry.noise_decay

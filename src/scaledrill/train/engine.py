@@ -31,6 +31,7 @@ from scaledrill.tasks.sampler import make_sampler
 from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
+from scaledrill.train.blame import WorkerBlame
 from scaledrill.train.grads import GradComputer, flatten_params, write_grads
 from scaledrill.train.signals import StopFlag
 
@@ -73,6 +74,7 @@ class Trainer:
         tel = cfg.telemetry
         self.noise_every, self.layer_every = tel.get("noise_every", 25), tel.get("layer_every", 10)
         self.clip_norm = cfg.optim.clip_norm
+        self.blame = WorkerBlame(self) if tel.get("blame", True) else None  # whose batch, when a detector fires
 
     def _choose_path(self, asked: str) -> str:
         if asked not in PATHS:
@@ -139,6 +141,8 @@ class Trainer:
     def step(self) -> StepRecord:
         step = self.step_index
         micro = self._micro_batches(step)
+        if self.blame is not None:
+            self.blame.before(step, micro)
         scale = self.layout.workers / self._global_count(micro)
         noise = self._noise_due(step)
         path = "vmap" if noise and self.path == "fused" else self.path
@@ -229,6 +233,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     trainer = Trainer(cfg, collective)
     layout = trainer.layout
     monitor = Monitor(cfg, run_dir, collective.rank, layout.micro_batch * layout.accum, layout.global_batch, config_yaml(cfg))
+    monitor.blame = trainer.blame.report if trainer.blame is not None else None
     if cfg.get("resume"):
         state = checkpoint.load(cfg.resume)
         checkpoint.restore(trainer, monitor, state)
