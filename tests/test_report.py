@@ -208,11 +208,12 @@ def test_replay_report_overlays_variants_original_and_cluster_log(tmp_path):
     assert list(page.sections) == ["replay"]  # the variant and original runs are not listed again
     section = page.sections["replay"]
     alts = [i["alt"] for i in pngs(section)]
-    assert alts == ["loss of original, base, lower_lr, cluster log against step, resume and departure marked",
-                    "global gradient norm of original, base, lower_lr, cluster log against step, resume and "
+    assert alts == ["loss of run before step 10, base, lower_lr, cluster log against step, resume and departure marked",
+                    "global gradient norm of run before step 10, base, lower_lr, cluster log against step, resume and "
                     "departure marked"]  # fmt: skip
     assert section["captions"] == ["Variants resumed at step 10 from original/checkpoints/step-10.pt"]
     assert "optim.lr=0.05" in text and "Not recorded here" not in text
+    assert "the unchanged replay departs from the cluster log at step 14" in text
 
 
 def test_ladder_report_with_forecast_beside_it(tmp_path):
