@@ -149,3 +149,23 @@ def test_a_bare_state_dict_starts_the_optimizer_fresh(tmp_path):
     saved = torch.load(tmp_path / "run" / "checkpoints" / "step-0000003.pt", weights_only=True)
     assert saved["step"] == 3 and all(torch.equal(saved["model"][k], v) for k, v in model.state_dict().items())
     assert saved["optimizer"]["state"] == {}
+
+
+def test_settings_and_scheduler_that_change_the_step_are_named(tmp_path):
+    model = TinyNet()
+    sgd = torch.optim.SGD([{"params": [p for p in model.parameters() if p.ndim > 1], "weight_decay": 0.0},
+                           {"params": [p for p in model.parameters() if p.ndim <= 1], "weight_decay": 0.0}],
+                          lr=0.05, momentum=0.5)
+    sched = torch.optim.lr_scheduler.StepLR(sgd, step_size=1, gamma=0.5)
+    _trained(model, sgd)
+    sched.step()
+    with pytest.raises(CheckpointError) as err:
+        _adopt(tmp_path, {"model": model.state_dict(), "optimizer": sgd.state_dict(), "scheduler": sched.state_dict()},
+               "adopt.scheduler_key=scheduler")
+    lines = str(err.value).splitlines()[1:]
+    # momentum 0.5 in the file, 0.9 in JOB: named per parameter; the weights lack JOB's weight decay 1e-3
+    assert "adopt.optimizer_key: parameter hidden.weight: momentum is 0.5 in the file, 0.9 here (optim.momentum)" in lines
+    assert ("adopt.optimizer_key: parameter out.weight: weight_decay is 0.0 in the file, 0.001 here "
+            "(optim.weight_decay / optim.exclude)") in lines
+    assert "adopt.scheduler_key: the saved scheduler's rate for step 3 is 0.025, the schedule, scaling and optim keys give 0.05" in lines
+    assert len([x for x in lines if "momentum" in x]) == 4  # one line per parameter

@@ -20,6 +20,7 @@ def test_robust_outliers():
     assert robust_outliers([1.0, 5.0]) == []  # two workers: no median to stand against
     assert robust_outliers([1.0, 1.1, float("nan"), 0.9]) == [2]
     assert robust_outliers([1.0, 1.1, 0.9, 1.0, 0.01]) == []  # one-sided
+    assert robust_outliers([float("nan")] * 4) == []  # all alike: nobody stands out
 
 
 @pytest.mark.parametrize("procs, backend", [(1, "local"), (2, "gloo")])

@@ -16,7 +16,8 @@ How:
 4. Outliers by a robust rule: the modified z-score (x − median) / (1.4826 · MAD)
    over the W workers, above 3.5 for the loss or the gradient norm (Iglewicz and
    Hoaglin 1993, "How to Detect and Handle Outliers", from memory); the spread is
-   floored at 1e-3·|median| so W identical workers name none. One-sided: a worker
+   floored at 1e-3·|median| so W identical workers name none, and a non-finite
+   value stands out unless all are non-finite. One-sided: a worker
    doing better than the rest is not blamed. Fewer than 3 workers name none (the
    median of two is their mean).
 5. For each outlier: its sample indices in micro-batch order, and those samples
@@ -36,7 +37,7 @@ def robust_outliers(values: list[float], limit: float = MODIFIED_Z) -> list[int]
     """Step 4: positions whose modified z-score exceeds `limit` (non-finite values always do)."""
     finite = [v for v in values if math.isfinite(v)]
     if len(values) < 3 or not finite:
-        return [i for i, v in enumerate(values) if not math.isfinite(v)] if len(values) >= 3 else []
+        return []  # too few workers for a median to stand against, or all alike non-finite
     med = statistics.median(finite)
     mad = statistics.median(abs(v - med) for v in finite)
     spread = max(MAD_TO_SIGMA * mad, 1e-3 * abs(med), 1e-12)
