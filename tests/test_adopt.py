@@ -169,3 +169,18 @@ def test_settings_and_scheduler_that_change_the_step_are_named(tmp_path):
             "(optim.weight_decay / optim.exclude)") in lines
     assert "adopt.scheduler_key: the saved scheduler's rate for step 3 is 0.025, the schedule, scaling and optim keys give 0.05" in lines
     assert len([x for x in lines if "momentum" in x]) == 4  # one line per parameter
+
+
+def test_groups_whose_shapes_fit_two_splits_are_refused():
+    class Two(torch.nn.Module):
+        def __init__(self):
+            super().__init__()
+            self.a, self.b = torch.nn.Parameter(torch.ones(3)), torch.nn.Parameter(torch.ones(3))
+
+    model = Two()
+    theirs = torch.optim.SGD([{"params": [model.b]}, {"params": [model.a]}], lr=0.1, momentum=0.9)  # not in named order
+    model.a.grad, model.b.grad = torch.full((3,), 1.0), torch.full((3,), 2.0)
+    theirs.step()
+    ours = build_optimizer(list(model.named_parameters()), OmegaConf.create({"name": "sgd", "lr": 0.1, "momentum": 0.9}))
+    _, problems = adopt_optimizer(theirs.state_dict(), ours, model, "sgd", "adopt.optimizer_key")
+    assert len(problems) == 1 and "fit several splits" in problems[0]

@@ -36,13 +36,17 @@ def _shape(entry: dict) -> tuple | None:
     return None  # no tensor state (yet): fits any parameter
 
 
-def split_by_shape(named: list[tuple[str, tuple]], groups: list[list[int]], state: dict, limit: int = 64) -> list[dict]:
-    """Every assignment position -> name (up to `limit`) that keeps each group in named order and fits the shapes."""
+def split_by_shape(named: list[tuple[str, tuple]], groups: list[list[int]], state: dict, limit: int = 64,
+                   budget: int = 200_000) -> list[dict]:
+    """Every assignment position -> name (up to `limit`) that keeps each group in named order and fits the shapes.
+    A search past `budget` placements returns what it found plus a None marker: treated as ambiguous."""
     shapes = {i: _shape(state.get(i, {})) for g in groups for i in g}
-    found: list[dict] = []
+    found: list = []
+    visits = [0]
 
     def place(k: int, heads: list[int], assigned: dict):
-        if len(found) >= limit:
+        visits[0] += 1
+        if len(found) >= limit or visits[0] > budget:
             return
         if k == len(named):
             if all(h == len(g) for h, g in zip(heads, groups)):
@@ -60,6 +64,8 @@ def split_by_shape(named: list[tuple[str, tuple]], groups: list[list[int]], stat
                     heads[gi] -= 1
 
     place(0, [0] * len(groups), {})
+    if visits[0] > budget and found:
+        found.append(None)  # not searched to the end: more splits may exist
     return found
 
 
@@ -102,7 +108,7 @@ def adopt_optimizer(saved: dict, optimizer: torch.optim.Optimizer, model: torch.
     chosen = splits[0]
     first = {name: state.get(i, {}) for i, name in chosen.items()}
     for other in splits[1:]:
-        if not all(_same_entry(first[name], state.get(i, {})) for i, name in other.items()):
+        if other is None or not all(_same_entry(first[name], state.get(i, {})) for i, name in other.items()):
             return {}, problems + [f"{where}: the saved shapes fit several splits of the parameters into its {len(groups)} groups, "
                                    "which give different state; save the optimizer with one group, or adopt without it"]
     settings = {}
