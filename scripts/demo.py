@@ -3,7 +3,8 @@
 1. check    — accumulation, virtual workers and real processes match the true batch
 2. ladder   — the digits recipe at growing global batches, with SGD and with LAMB
 3. forecast — time and cost of each rung on an example cluster of our own invention
-4. diverge  — a recipe scaled too far blows up; replay tries fixes from its last healthy checkpoint
+4. diverge  — a recipe scaled too far blows up; replay tries fixes from its last healthy checkpoint,
+               over the log of an invented cluster job that ran the same recipe
 5. report   — one HTML page with every picture
 
 Every step is the command line a user would type; the outputs land in one folder.
@@ -33,6 +34,25 @@ def step(title: str, *args: str) -> None:
         sys.exit(done.returncode)
 
 
+def invent_cluster_log(blowup: Path, path: Path, departs: int = 21) -> None:
+    """An invented scenario, for the replay's overlay: a cluster job ran the same recipe and logged
+    step, loss, grad_norm, lr and throughput as CSV. Its losses agree with the rehearsal up to
+    float rounding (another summation order: a relative 1e-6 wobble) until step `departs`, where
+    (invented) a corrupted shard reached its workers and its loss climbs 30% more each step."""
+    sys.path.insert(0, str(ROOT / "src"))
+    from scaledrill.telemetry.store import read_scalars
+
+    scalars = read_scalars(blowup / "run.sqlite")
+    steps, loss = scalars["loss"]
+    grad, lr = scalars["grad_norm"][1], scalars["lr"][1]
+    rows = ["step,loss,grad_norm,lr,samples_per_s"]
+    for i, s in enumerate(steps.tolist()):
+        wobble = 1 + 1e-6 * (-1) ** s
+        climb = 1.3 ** max(0, s - departs + 1)
+        rows.append(f"{s},{loss[i] * wobble * climb:.9g},{grad[i] * wobble * climb:.9g},{lr[i]:.9g},{52000 + 37 * (s % 7)}")
+    path.write_text("\n".join(rows) + "\n")
+
+
 def main() -> None:
     out = ROOT / "runs" / f"demo-{time.strftime('%Y%m%d-%H%M%S')}"
     step("1. check: do accumulation, virtual workers and processes give the true large-batch gradient?",
@@ -46,8 +66,10 @@ def main() -> None:
          "forecast", "task=digits", f"forecast.ladder={out}/ladder-sgd", f"hydra.run.dir={out}/forecast")
     step("4a. a recipe scaled 64x by the linear rule diverges (detectors stop it, an incident is written)",
          "run", "+scenario=divergence", "train.progress=false", f"hydra.run.dir={out}/blowup")
-    step("4b. replay: the same steps again, and fixes side by side, from the newest checkpoint before the blow-up",
-         "replay", f"replay.from={out}/blowup", '+replay.variants.clip="optim.clip_norm=2.0"', '+replay.variants.sqrt="scaling.rule=sqrt"',
+    invent_cluster_log(out / "blowup", out / "cluster-job.csv")
+    step("4b. replay: the same steps again, and fixes side by side, from the newest checkpoint before the blow-up, "
+         "over the (invented) cluster job's log",
+         "replay", f"replay.from={out}/blowup", f"replay.cluster_log={out}/cluster-job.csv", '+replay.variants.clip="optim.clip_norm=2.0"', '+replay.variants.sqrt="scaling.rule=sqrt"',
          '+replay.variants.lamb=["optim=lamb","optim.lr=0.002","scaling.rule=sqrt"]', f"hydra.run.dir={out}/replay")
     step("5. report", "report", str(out))
     print(f"\nDemo outputs: {out}\nOpen the report: {out / 'report.html'}")

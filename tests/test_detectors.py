@@ -7,7 +7,7 @@ from omegaconf import OmegaConf
 from conftest import composed
 from scaledrill.errors import ConfigError
 from scaledrill.telemetry import validate
-from scaledrill.telemetry.detectors import GradExplosion, LossSpike, NonFinite, OverflowStorm, ScaleCollapse, build_detectors
+from scaledrill.telemetry.detectors import GradExplosion, InitialRise, LossSpike, NonFinite, OverflowStorm, ScaleCollapse, build_detectors
 
 
 def healthy(steps=1000, seed=0):
@@ -23,7 +23,7 @@ def run(detector, series):
     return [(step, r) for step, s in enumerate(series) if (r := detector.observe(step, s)) is not None]
 
 
-@pytest.mark.parametrize("make", [NonFinite, LossSpike, GradExplosion])
+@pytest.mark.parametrize("make", [NonFinite, LossSpike, GradExplosion, InitialRise])
 def test_quiet_on_a_healthy_run(make):
     d = make()
     assert run(d, healthy()) == []
@@ -51,7 +51,7 @@ def test_loss_spike_threshold_is_the_robust_z():
     # robust sigma 0.14826 (MAD × 1.4826 is the Gaussian sigma; Rousseeuw and Croux 1993, from memory).
     base = [{"loss": 1.0 + 0.2 * (i % 2)} for i in range(50)]
     sigma = 0.1 * 1.4826
-    below, above = (LossSpike(threshold=6.0, window=50, min_history=50) for _ in range(2))
+    below, above = (LossSpike(threshold=6.0, ratio=1.0, share=0.0, window=50, min_history=50) for _ in range(2))
     assert run(below, base + [{"loss": 1.1 + 5.9 * sigma}]) == []
     assert [s for s, _ in run(above, base + [{"loss": 1.1 + 6.1 * sigma}])] == [50]
 
@@ -80,13 +80,13 @@ def test_build_from_the_default_config():
     cfg = composed("telemetry", "default")
     validate(cfg)
     kinds = [type(d) for d in build_detectors(cfg)]
-    assert kinds == [NonFinite, LossSpike, GradExplosion, OverflowStorm, ScaleCollapse]
+    assert kinds == [NonFinite, LossSpike, GradExplosion, OverflowStorm, ScaleCollapse, InitialRise]
     spike = build_detectors(cfg)[1]
-    assert (spike.threshold, spike.window, spike.min_history) == (6.0, 50, 20)
+    assert (spike.threshold, spike.ratio, spike.share, spike.window, spike.min_history) == (6.0, 2.0, 0.1, 50, 20)
 
 
 def test_null_disables():
-    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0, "skip_storm": None, "scale_floor": None}})
+    cfg = OmegaConf.create({"detect": {"nonfinite": False, "spike_z": None, "grad_factor": 5.0, "skip_storm": None, "scale_floor": None, "initial_factor": None}})
     (only,) = build_detectors(cfg)
     assert isinstance(only, GradExplosion) and only.factor == 5.0
 
@@ -99,6 +99,9 @@ def test_null_disables():
         ({"detect": {"nonfinite": "yes"}}, "telemetry.detect.nonfinite"),
         ({"detect": {"spike_window": 10}}, "telemetry.detect.spike_window"),  # below min_history=20
         ({"detect": {"spike_zz": 3.0}}, "telemetry.detect.spike_zz"),
+        ({"detect": {"spike_ratio": 0.5}}, "telemetry.detect.spike_ratio"),
+        ({"detect": {"spike_share": 1.5}}, "telemetry.detect.spike_share"),
+        ({"detect": {"initial_factor": 1.0}}, "telemetry.detect.initial_factor"),
         ({"on_trigger": "halt"}, "telemetry.on_trigger"),
         ({"layer_every": -1}, "telemetry.layer_every"),
         ({"flush_every": 0}, "telemetry.flush_every"),
@@ -131,3 +134,50 @@ def test_scale_collapse_fires_when_the_scale_crosses_the_floor():
     fired = [s for s, v in enumerate(scales) if collapse.observe(s, {"loss_scale": v})]
     assert fired == [3, 6]  # crossing down twice; staying below does not fire again
     assert collapse.observe(7, {"loss": 1.0}) is None  # runs without loss scaling log no scale
+
+
+def converged(steps=300, seed=0):
+    """A loss that fell from 2.3 to ~0.01 and stays there with heavy-tailed batch noise: most
+    batches near 0.006, one in ~25 holding a misfit sample at 5-10x that (as a trained digits
+    classifier shows), and gradient norms with the same kind of tail."""
+    rng = np.random.default_rng(seed)
+    series = [{"loss": 2.3, "grad_norm": 1.2}]
+    for _ in range(steps):
+        misfit = rng.random() < 0.04
+        loss = 0.006 * (1 + 0.3 * rng.standard_normal()) * (rng.uniform(5, 10) if misfit else 1.0)
+        grad = 0.05 * np.exp(0.3 * rng.standard_normal()) * (rng.uniform(8, 14) if misfit else 1.0)
+        series.append({"loss": abs(loss), "grad_norm": grad})
+    return series
+
+
+def test_no_alarm_near_convergence_but_the_z_score_alone_would_fire():
+    series = converged()
+    assert run(LossSpike(), series) == [] and run(GradExplosion(), series) == []
+    # Without the floors, the same series trips: the tiny MAD turns ordinary misfit batches into many sigmas.
+    assert run(LossSpike(ratio=1.0, share=0.0), series) != []
+    assert run(GradExplosion(first=0.0), series) != []
+
+
+def test_a_real_spike_near_convergence_still_fires():
+    series = converged()
+    series[200]["loss"] = 0.5  # gives back 0.49/2.29 = 21% of the fall: past the 10% share
+    assert [s for s, _ in run(LossSpike(), series)] == [200]
+    small = converged()
+    small[200]["loss"] = 0.1  # 16x the median, but only 4% of the fall
+    assert run(LossSpike(), small) == []
+
+
+def test_ratio_floor():
+    base = [{"loss": 1.0 + 0.01 * (i % 2)} for i in range(50)]  # median 1.005, robust sigma 0.0074
+    assert run(LossSpike(ratio=2.0, share=0.0, min_history=50), base + [{"loss": 1.9}]) == []  # 120 sigma, 1.89x
+    assert [s for s, _ in run(LossSpike(ratio=2.0, share=0.0, min_history=50), base + [{"loss": 2.1}])] == [50]
+
+
+def test_initial_rise_fires_before_any_window_is_ready():
+    series = [{"loss": 13.1}, {"loss": 12.9}, {"loss": 20.0}, {"loss": 27.0}, {"loss": 146.0}]
+    fired = run(InitialRise(factor=2.0), series)
+    assert [s for s, _ in fired] == [3, 4]  # 27.0 > 2 × 13.1; 20.0 is not
+    assert "first loss 13.1" in fired[0][1]
+    resumed = InitialRise(factor=2.0)
+    resumed.load_state_dict(InitialRise(factor=2.0, initial=13.1).state_dict())
+    assert resumed.observe(9, {"loss": 26.3}) is not None

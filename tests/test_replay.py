@@ -46,7 +46,10 @@ def test_two_variants_and_a_bitwise_original(tmp_path, small_run):
     for v in out["variants"]:
         summary = json.loads((tmp_path / "replay" / v["run_dir"] / "summary.json").read_text())
         assert summary["steps"] == 12 and summary["resumed_from_step"] == 4
-        assert summary["final_loss"] == v["final_loss"] and not v["diverged"]
+        assert summary["final_loss"] == v["final_loss"]
+    # Clipping to 0.01 under momentum 0.9 leaves the loss climbing every step (10 -> 43 by step 11, measured):
+    # past 3x the run's first loss, which the initial-loss rule calls a divergence.
+    assert [v["diverged"] for v in out["variants"]] == [False, False, True]
     original = json.loads((tmp_path / "replay" / "variant-original" / "summary.json").read_text())
     # The original continuation is the uninterrupted run, bit for bit.
     assert original["final_loss"] == straight["final_loss"]

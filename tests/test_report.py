@@ -168,6 +168,18 @@ def test_run_report_has_every_curve_heatmap_and_table(tmp_path, capsys):
     assert page.external == []
 
 
+def test_an_incident_names_the_worker_that_blew_up(tmp_path):
+    run = make_run(tmp_path / "run")
+    workers = {"step": 20, "rule": "median/MAD", "loss": [1.0, 1.1, 162.0, 0.9], "grad_norm": [0.9, 1.0, 1442.0, 0.8],
+               "outliers": [{"worker": 2, "loss": 162.0, "grad_norm": 1442.0, "samples": [464, 465, 362, 17],
+                             "worst_samples": [{"index": 362, "loss": 1287.8}, {"index": 15, "loss": 1.6}]}]}
+    (run / "incident-20.json").write_text(json.dumps({"step": 20, "reason": "loss rise", "workers": workers}))
+    text, page = render(run, tmp_path)
+    (section,) = page.sections.values()
+    assert section["captions"][-1].startswith("Which worker blew up")
+    assert "362 (loss 1288)" in text and "464 465 362 17" in text
+
+
 def test_a_bare_run_says_what_is_absent(tmp_path):
     run = tmp_path / "bare"
     run.mkdir()
@@ -197,11 +209,12 @@ def test_replay_report_overlays_variants_original_and_cluster_log(tmp_path):
     assert list(page.sections) == ["replay"]  # the variant and original runs are not listed again
     section = page.sections["replay"]
     alts = [i["alt"] for i in pngs(section)]
-    assert alts == ["loss of original, base, lower_lr, cluster log against step, resume and departure marked",
-                    "global gradient norm of original, base, lower_lr, cluster log against step, resume and "
+    assert alts == ["loss of run before step 10, base, lower_lr, cluster log against step, resume and departure marked",
+                    "global gradient norm of run before step 10, base, lower_lr, cluster log against step, resume and "
                     "departure marked"]  # fmt: skip
     assert section["captions"] == ["Variants resumed at step 10 from original/checkpoints/step-10.pt"]
     assert "optim.lr=0.05" in text and "Not recorded here" not in text
+    assert "the unchanged replay departs from the cluster log at step 14" in text
 
 
 def test_ladder_report_with_forecast_beside_it(tmp_path):

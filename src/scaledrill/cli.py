@@ -20,6 +20,7 @@ VERBS = {
     "recipe": ("print the scaled recipe without training", "recipe:recipe_verb"),
     "check": ("prove accumulation, virtual workers and processes match the true batch", "check:check_verb"),
     "replay": ("resume a checkpoint with overrides, side by side", "replay:replay_verb"),
+    "adopt": ("turn a plain PyTorch checkpoint into a run directory to resume or replay", "adopt:adopt_verb"),
     "ladder": ("run the recipe across growing batch sizes", "ladder:ladder_verb"),
     "forecast": ("project step time, time-to-target and cost on a cluster", "forecast:forecast_verb"),
     "report": ("render the HTML report of a run directory", "report:report_verb"),

@@ -118,7 +118,7 @@ def rebuild_overrides(saved: dict, where: str = "config.yaml") -> list[str]:
             step = _first_difference(target, have)  # step 2
             if step is None:
                 return overrides  # step 3
-            overrides.append(step)
+            overrides += _replace_subtree(step, have, saved)
     raise CheckpointError(f"{where}: cannot rebuild its configuration from configs/ (still differs after {overrides})")
 
 
@@ -132,6 +132,21 @@ def _first_difference(target: dict, have: dict) -> str | None:
         if key not in target and not any(t.startswith(key + ".") for t in target):
             return f"~{key}"
     return None
+
+
+def _replace_subtree(step: str, have: dict, saved: dict) -> list[str]:
+    """Hydra cannot delete a key whose value is null (`~task.model.group_size` says it does not
+    exist), as when a user's model replaces a task's: then replace the whole parent node instead."""
+    key = step[1:]
+    if not step.startswith("~") or have.get(key) is not None or "." not in key:
+        return [step]
+    parent = key.rsplit(".", 1)[0]
+    node = saved
+    for part in parent.split("."):
+        node = node.get(part) if isinstance(node, dict) else None
+    if not isinstance(node, dict):
+        return [step]
+    return [f"~{parent}", f"+{parent}={render(node)}"]
 
 
 def _nan(value) -> bool:

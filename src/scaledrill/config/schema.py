@@ -46,11 +46,22 @@ class ScalerConfig:
 
 
 @dataclass
+class TorchSamplerConfig:
+    """train.order=torch_distributed: worker w sees what rank w of DistributedSampler(W, w, ...) yields."""
+
+    shuffle: bool = True
+    seed: int = 0
+    drop_last: bool = False
+
+
+@dataclass
 class TrainConfig:
     steps: int = 200  # optimizer steps
     seed: int = 0
     eval_every: int = 50  # steps between evaluations; 0 = only at the end
     tail: str = "drop"  # epoch tail that does not fill a global batch: drop | carry
+    order: str = "layout"  # layout (each step's global batch from one permutation; any P) | torch_distributed (tasks/torch_order.py)
+    torch_sampler: TorchSamplerConfig = field(default_factory=TorchSamplerConfig)
     checkpoint_every: int = 0  # steps between checkpoints; 0 = only at the end
     grads: str = "auto"  # auto | fused | vmap | loop
     dtype: str = "float32"  # float32 | float64: the master weights, their gradients and the optimizer state

@@ -9,7 +9,7 @@ from hydra.core.config_store import ConfigStore
 from omegaconf import OmegaConf
 
 from scaledrill.config.schema import GROUPS, RunConfig, TaskConfig
-from scaledrill.config.verbs_schema import CheckRoot, ClusterConfig, ForecastRoot, LadderRoot, ReplayRoot, ReportRoot
+from scaledrill.config.verbs_schema import AdoptRoot, CheckRoot, ClusterConfig, ForecastRoot, LadderRoot, ReplayRoot, ReportRoot
 
 
 def register() -> None:
@@ -24,6 +24,7 @@ def register() -> None:
     store.store(name="base_check", node=CheckRoot)  # a run's root and the verb's own keys
     store.store(name="base_ladder", node=LadderRoot)
     store.store(name="base_replay", node=ReplayRoot)
+    store.store(name="base_adopt", node=AdoptRoot)
     store.store(name="base_forecast", node=ForecastRoot)
     store.store(name="base_report", node=ReportRoot)
 

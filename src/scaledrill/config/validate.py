@@ -70,6 +70,8 @@ def validate_train(cfg) -> None:
         raise ConfigError("train.seed", "must be a whole number", cfg.train.seed)
     if cfg.train.tail not in ("drop", "carry"):
         raise ConfigError("train.tail", "must be drop or carry", cfg.train.tail)
+    if cfg.train.get("order", "layout") not in ("layout", "torch_distributed"):
+        raise ConfigError("train.order", "must be layout or torch_distributed", cfg.train.order)
     if cfg.train.grads not in PATHS:
         raise ConfigError("train.grads", f"must be one of {', '.join(PATHS)}", cfg.train.grads)
     if cfg.train.dtype not in ("float32", "float64"):

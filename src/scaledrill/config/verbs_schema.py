@@ -79,6 +79,19 @@ _key_named(ReplayConfig, "source", "from")
 
 
 @dataclass
+class AdoptConfig:
+    source: str = MISSING  # stored under the key `from`: the checkpoint file (torch.save of a dict, or a bare state_dict)
+    step: int = MISSING  # optimizer steps the job had taken when it saved the file
+    model_key: Optional[str] = "model"  # the model's state_dict in the file; a bare state_dict file needs none
+    optimizer_key: Optional[str] = "optimizer"  # torch optimizer state_dict; absent from the file = fresh; null = ignore it
+    scheduler_key: Optional[str] = None  # a torch LR scheduler state_dict to check against the schedule keys
+    cluster_log: Optional[str] = None  # optional CSV (step, loss[, grad_norm, lr]): rows before adopt.step go into run.sqlite
+
+
+_key_named(AdoptConfig, "source", "from")
+
+
+@dataclass
 class CheckRoot(RunConfig):
     check: CheckConfig = field(default_factory=CheckConfig)
 
@@ -91,6 +104,11 @@ class LadderRoot(RunConfig):
 @dataclass
 class ReplayRoot(RunConfig):
     replay: ReplayConfig = field(default_factory=ReplayConfig)
+
+
+@dataclass
+class AdoptRoot(RunConfig):
+    adopt: AdoptConfig = field(default_factory=AdoptConfig)
 
 
 @dataclass

@@ -56,14 +56,26 @@ def _positive(values) -> bool:
     return finite.size > 0 and bool(np.all(finite > 0))
 
 
-def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool = False, marks=()) -> str:
+DASHES = ("-", "--", "-.", ":")
+MARKERS = ("o", "s", "^", "D", "v", "P", "X")
+
+
+def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool = False, marks=(),
+          distinct: bool = False) -> str:
     """Line plot of `series` = [(label, x, y)] with vertical `marks` = [(x, label)].
 
     A log y axis is used only if asked for and every value is positive, so a
-    diverged (NaN) or zero curve still draws instead of failing.
+    diverged (NaN) or zero curve still draws instead of failing. `distinct` gives
+    each series its own dash and marker, drawn thinner the later it comes, so
+    curves that coincide (a variant that changes nothing yet) all stay visible.
     """
     fig, (ax,) = _figure()
     for i, (label, x, y) in enumerate(series):
+        if distinct:
+            ax.plot(x, y, linestyle=DASHES[i % len(DASHES)], marker=MARKERS[i % len(MARKERS)], color=SERIES[i % len(SERIES)],
+                    label=label, linewidth=max(2.4 - 0.5 * i, 0.9), markersize=max(6 - i, 3), markevery=max(len(x) // 12, 1),
+                    fillstyle="none")
+            continue
         style = "o-" if len(x) <= 12 else "-"
         ax.plot(x, y, style, color=SERIES[i % len(SERIES)], label=label, linewidth=1.4, markersize=3)
     for j, (x, label) in enumerate(marks):

@@ -87,15 +87,27 @@ def _eval_blocks(summary: dict) -> list[str]:
 
 
 def _incident_blocks(directory: Path) -> list[str]:
-    rows = []
+    rows, blamed = [], []
     for path in sorted(directory.glob("incident-*.json"), key=lambda p: int(re.sub(r"\D", "", p.stem) or 0)):
         doc, problem = load_json(path)
         doc = doc or {}
-        rows.append((path.name, doc.get("step"), doc.get("reason", problem), doc.get("first_layer"),
+        workers = doc.get("workers") or {}
+        names = ", ".join(str(o.get("worker")) for o in workers.get("outliers", [])) or ("none" if workers else "-")
+        rows.append((path.name, doc.get("step"), doc.get("reason", problem), doc.get("first_layer"), names,
                      doc.get("last_checkpoint")))  # fmt: skip
+        for o in workers.get("outliers", []):
+            worst = ", ".join(f"{s.get('index')} (loss {s.get('loss'):.4g})" for s in o.get("worst_samples", [])[:3])
+            blamed.append((doc.get("step"), o.get("worker"), o.get("loss"), o.get("grad_norm"), worst,
+                           " ".join(map(str, o.get("samples", [])))[:200]))
     if not rows:
         return []
-    return [table("Incidents (divergence records)", ("file", "step", "reason", "first layer", "last checkpoint"), rows)]
+    blocks = [table("Incidents (divergence records)", ("file", "step", "reason", "first layer", "outlier workers",
+                                                       "last checkpoint"), rows)]
+    if blamed:
+        blocks.append(table("Which worker blew up: outlier workers at the trigger step (each rerun alone; median/MAD rule)",
+                            ("step", "worker", "loss", "gradient norm", "worst samples (index, own loss)",
+                             "all sample indices"), blamed))
+    return blocks
 
 
 def run_section(directory: Path, source: str) -> Section:

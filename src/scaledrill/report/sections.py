@@ -82,15 +82,13 @@ def replay_section(directory: Path, source: str) -> Section:
         section.blocks.append(absent([problem]))
         return section
     variants, missing = doc.get("variants", []), []
-    rows = [(v.get("name"), " ".join(v.get("overrides", [])), v.get("final_loss"), v.get("diverged")) for v in variants]
-    section.blocks.append(table(f"Variants resumed at step {doc.get('from_step')} from {doc.get('checkpoint')}",
-                                ("variant", "overrides", "final loss", "diverged"), rows,
-                                ["bad" if r[3] else "" for r in rows]))  # fmt: skip
     curves = {}
     checkpoint = str(doc.get("checkpoint") or "")
+    from_step = doc.get("from_step")
     original = _original_run(directory / checkpoint) or (_original_run(Path(checkpoint)) if checkpoint else None)
-    if original is not None:
-        curves["original"] = read_scalars(original / "run.sqlite")
+    before_label = f"run before step {from_step}"
+    if original is not None:  # the rehearsal up to the resume point, as the command line draws it
+        curves[before_label] = {k: _upto(v, from_step) for k, v in read_scalars(original / "run.sqlite").items()}
     for v in variants:
         store = directory / str(v.get("run_dir", "")) / "run.sqlite"
         if store.is_file():
@@ -98,22 +96,46 @@ def replay_section(directory: Path, source: str) -> Section:
         else:
             missing.append(f"run store of variant {v.get('name')}")
     log = directory / str(doc.get("cluster_log") or "cluster_log.csv")
+    if doc.get("cluster_log") and not log.is_file():
+        log = Path(str(doc["cluster_log"]))
     columns, problem = _cluster_log(log) if log.is_file() else ({}, "cluster log")
     if columns:
         curves["cluster log"] = columns
     else:
         missing.append(problem)
-    marks = [(doc["from_step"], f"resumed at {doc['from_step']}")] if doc.get("from_step") is not None else []
-    if doc.get("departure_step") is not None:
-        marks.append((doc["departure_step"], f"departs at {doc['departure_step']}"))
+    departure = doc.get("departure_step")
+    rows = []
+    for v in variants:
+        loss = curves.get(str(v.get("name")), {}).get("loss", ([], []))
+        finite = [float(x) for x in loss[1] if np.isfinite(x)]
+        vs_log = "" if not columns or v.get("name") != "original" else (
+            f"departs at step {departure}" if departure is not None else "follows")
+        rows.append((v.get("name"), " ".join(v.get("overrides", [])) or "-", v.get("final_loss"),
+                     min(finite) if finite else None, v.get("diverged"), int(loss[0][-1]) + 1 if len(loss[0]) else None,
+                     vs_log))
+    headers = ("variant", "overrides", "final loss", "min loss", "diverged", "steps", "vs cluster log")
+    section.blocks.append(table(f"Variants resumed at step {from_step} from {doc.get('checkpoint')}", headers, rows,
+                                ["bad" if r[4] else "" for r in rows]))  # fmt: skip
+    if columns:
+        said = f"departs from the cluster log at step {departure}" if departure is not None else "follows the cluster log"
+        section.blocks.append(verdict(departure is None, f"the unchanged replay {said}"))
+    marks = [(from_step, f"resumed at {from_step}")] if from_step is not None else []
+    if departure is not None:
+        marks.append((departure, f"departs at {departure}"))
     for name, ylabel in (("loss", "loss"), ("grad_norm", "global gradient norm")):
         series = [(label, *scalars[name]) for label, scalars in curves.items() if name in scalars]
         if series:
             alt = f"{ylabel} of {', '.join(s[0] for s in series)} against step, resume and departure marked"
-            section.blocks.append(figure(fg.lines(f"Replay: {ylabel}", series, ylabel=ylabel, logy=name == "loss",
-                                                  marks=marks), alt))  # fmt: skip
+            section.blocks.append(figure(fg.lines(f"Replay: {ylabel}", series, ylabel=ylabel, logy=True,
+                                                  marks=marks, distinct=True), alt))  # fmt: skip
     section.blocks.append(absent(missing))
     return section
+
+
+def _upto(series: tuple, step) -> tuple:
+    steps, values = series
+    keep = np.asarray(steps) < step if step is not None else np.ones(len(steps), bool)
+    return np.asarray(steps)[keep], np.asarray(values)[keep]
 
 
 def _search_rows(search: dict) -> list:

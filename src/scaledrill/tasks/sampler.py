@@ -99,3 +99,25 @@ class Sampler:
         L = self.layout
         whole = self.global_batch(step).view(L.workers, L.accum, L.micro_batch)
         return whole[workers.start : workers.stop].transpose(0, 1)
+
+
+ORDERS = ("layout", "torch_distributed")
+
+
+def make_sampler(size: int | None, layout: Layout, train):
+    """The sampler `train.order` names: this module's layout-invariant order (the default), or
+    the order of torch's DistributedSampler (torch_order.py), its settings in `train.torch_sampler`."""
+    order = train.get("order", "layout")
+    if order not in ORDERS:
+        raise ConfigError("train.order", f"must be one of {', '.join(ORDERS)}", order)
+    if order == "layout":
+        return Sampler(size, layout, train.seed, train.tail)
+    from scaledrill.tasks.torch_order import DistributedOrder
+
+    node = train.get("torch_sampler") or {}
+    shuffle, seed, drop_last = node.get("shuffle", True), node.get("seed", 0), node.get("drop_last", False)
+    for key, value, ok in (("shuffle", shuffle, isinstance(shuffle, bool)), ("drop_last", drop_last, isinstance(drop_last, bool)),
+                           ("seed", seed, isinstance(seed, int) and not isinstance(seed, bool))):
+        if not ok:
+            raise ConfigError(f"train.torch_sampler.{key}", "must be true or false" if key != "seed" else "must be a whole number", value)
+    return DistributedOrder(size, layout, seed, shuffle=shuffle, drop_last=drop_last)

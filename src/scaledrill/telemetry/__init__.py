@@ -36,6 +36,8 @@ def validate(cfg_telemetry) -> None:
     _count(cfg_telemetry, "layer_every", 0)
     _count(cfg_telemetry, "flush_every", 1)
     _count(cfg_telemetry, "noise_every", 0)
+    if not isinstance(cfg_telemetry.get("blame", DEFAULTS.blame), bool):
+        raise ConfigError("telemetry.blame", "must be true or false", cfg_telemetry.get("blame"))
     if not isinstance(cfg_telemetry.get("tensorboard", DEFAULTS.tensorboard), bool):
         raise ConfigError("telemetry.tensorboard", "must be true or false", cfg_telemetry.get("tensorboard"))
     NoiseScale(decay=cfg_telemetry.get("noise_decay", DEFAULTS.noise_decay))  # checks telemetry.noise_decay

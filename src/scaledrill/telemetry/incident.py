@@ -16,6 +16,9 @@ per-layer history given (oldest first):
 3. `first_layer` is the layer that trips at the earliest step; a tie goes to the
    largest rise, then to the name. None when no layer trips.
 
+`workers`, when the engine supplies it, names each worker's loss and gradient
+norm at the step, the outlier workers and their sample indices (train/blame.py).
+
 The file is written next to the run as `incident-<step>.json`, atomically (a
 temporary file, fsync, then rename), so a reader never sees half a record.
 Non-finite numbers are written as the strings "NaN", "Infinity", "-Infinity" to
@@ -70,6 +73,7 @@ def write_incident(
     last_checkpoint: str | None,
     keep: int = 20,
     factor: float = 3.0,
+    workers: dict | None = None,
 ) -> Path:
     """Write `incident-<step>.json` into `run_dir` and return its path.
 
@@ -88,6 +92,7 @@ def write_incident(
         "layer_trips": trips,
         "layers": [{"step": s, "layers": stats} for s, stats in list(history)[-keep:]],
         "scalars": [{"step": s, "scalars": values} for s, values in list(scalars_history)[-keep:]],
+        "workers": workers,  # each worker's loss and gradient norm at the step, the outliers and their samples (train/blame.py)
         "config_yaml": config_yaml,
         "last_checkpoint": last_checkpoint,
     }

@@ -73,6 +73,7 @@ class Monitor:
         self.config_yaml = config_yaml
         self.last_checkpoint: str | None = None
         self.incidents: list[str] = []
+        self.blame = None  # set by the engine: () -> each worker's loss and gradient norm at the step (collective)
         self.store = None
         self.events = None  # TensorBoard event files, when telemetry.tensorboard is on
         if rank == 0 and run_dir is not None:
@@ -104,16 +105,17 @@ class Monitor:
         if not reasons:
             return None
         reason = "; ".join(reasons)
+        workers = self.blame() if self.blame is not None else None  # every process takes part
         if self.store is not None:
-            incident = self._incident(record.step, reason)
+            incident = self._incident(record.step, reason, workers)
             self.store.log_event(record.step, "detector", {"reason": reason, "incident": incident})
         return reason if self.stop_on_trigger else None
 
-    def _incident(self, step: int, reason: str) -> str:
+    def _incident(self, step: int, reason: str, workers: dict | None = None) -> str:
         incident = self.cfg.incident
         path = write_incident(
             self.run_dir, step, reason, list(self.layer_history), list(self.scalar_history), self.config_yaml,
-            self.last_checkpoint, keep=incident.steps, factor=incident.factor,
+            self.last_checkpoint, keep=incident.steps, factor=incident.factor, workers=workers,
         )
         self.incidents.append(str(path))
         return str(path)

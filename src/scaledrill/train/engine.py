@@ -30,10 +30,11 @@ from scaledrill.sync.path import grad_path
 from scaledrill.sync.summary import sync_summary
 from scaledrill.tasks.base import Task, build_task
 from scaledrill.tasks.batches import cast_batch, check_finite
-from scaledrill.tasks.sampler import Sampler
+from scaledrill.tasks.sampler import make_sampler
 from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
+from scaledrill.train.blame import WorkerBlame
 from scaledrill.train.grads import GradComputer, flatten_params, write_grads
 from scaledrill.train.memory import check_fits
 from scaledrill.train.precision import Precision
@@ -61,7 +62,7 @@ class Trainer:
         set_group_size(self.model, self.layout.micro_batch)
         self.model.train()
 
-        self.sampler = Sampler(self.task.data.train.size, self.layout, cfg.train.seed, cfg.train.tail)
+        self.sampler = make_sampler(self.task.data.train.size, self.layout, cfg.train)
         self.recipe = resolve_recipe(cfg, self.layout, self.task.data.train.size, cfg.train.tail)
         self.optimizer = build_optimizer(list(self.model.named_parameters()), cfg.optim)
         self.params = [p for p in self.model.parameters()]
@@ -88,6 +89,7 @@ class Trainer:
         tel = cfg.telemetry
         self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
         self.clip_norm = cfg.optim.clip_norm
+        self.blame = WorkerBlame(self) if tel.get("blame", True) else None  # whose batch, when a detector fires
 
 
     def _say(self, line: str) -> None:
@@ -163,6 +165,8 @@ class Trainer:
     def step(self) -> StepRecord:
         step = self.step_index
         micro = self._micro_batches(step)
+        if self.blame is not None:
+            self.blame.before(step, micro)
         scale = self.layout.workers / self._global_count(micro)
         noise = self._noise_due(step)
         path = "vmap" if noise and self.path == "fused" else self.path
@@ -268,6 +272,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     trainer = Trainer(cfg, collective)
     layout = trainer.layout
     monitor = Monitor(cfg, run_dir, collective.rank, layout.micro_batch * layout.accum, layout.global_batch, config_yaml(cfg))
+    monitor.blame = trainer.blame.report if trainer.blame is not None else None
     if cfg.get("resume"):
         state = checkpoint.load(cfg.resume)
         checkpoint.restore(trainer, monitor, state)

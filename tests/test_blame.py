@@ -1,0 +1,44 @@
+"""Which worker blew up: a corrupted sample planted in one worker's batch is named, with its worker."""
+
+import json
+
+import pytest
+
+from conftest import run_cli
+from scaledrill.layout import Layout
+from scaledrill.tasks.sampler import Sampler
+from scaledrill.telemetry.store import read_scalars
+from scaledrill.train.blame import robust_outliers
+
+W, B_MICRO, SIZE, SEED = 8, 8, 512, 0
+STEP, WORKER, POSITION = 3, 5, 2  # where the bad sample is planted
+
+
+def test_robust_outliers():
+    assert robust_outliers([1.0, 1.1, 0.9, 1.0, 9.0]) == [4]
+    assert robust_outliers([1.0, 1.0, 1.0, 1.0]) == []  # identical workers: nobody to blame
+    assert robust_outliers([1.0, 5.0]) == []  # two workers: no median to stand against
+    assert robust_outliers([1.0, 1.1, float("nan"), 0.9]) == [2]
+    assert robust_outliers([1.0, 1.1, 0.9, 1.0, 0.01]) == []  # one-sided
+    assert robust_outliers([float("nan")] * 4) == []  # all alike: nobody stands out
+
+
+@pytest.mark.parametrize("procs, backend", [(1, "local"), (2, "gloo")])
+def test_the_incident_names_the_worker_and_the_sample(tmp_path, procs, backend):
+    sampler = Sampler(SIZE, Layout(W, 1, B_MICRO, 1, "local"), SEED, "drop")
+    bad = int(sampler.worker_batches(STEP, range(W))[0, WORKER, POSITION])
+    done = run_cli("run", "~task.model", "+task.model._target_=tests.fixtures_user.TinyNet", "+task.model.activation=relu", "~task.data",
+                   "+task.data._target_=tests.fixtures_user.CorruptedBlobData", f"+task.data.bad={bad}",
+                   f"layout.workers={W}", f"layout.procs={procs}", f"layout.backend={backend}", f"layout.micro_batch={B_MICRO}",
+                   "optim.lr=0.05", "train.steps=10", "train.eval_every=0", "train.progress=false", f"hydra.run.dir={tmp_path}")
+    assert done.returncode == 0, done.stderr
+    record = json.loads((tmp_path / f"incident-{STEP}.json").read_text())  # the run fused its workers; blame reran them
+    workers = record["workers"]
+    assert workers["step"] == STEP and len(workers["loss"]) == W and len(workers["grad_norm"]) == W
+    assert [o["worker"] for o in workers["outliers"]] == [WORKER]
+    (outlier,) = workers["outliers"]
+    assert outlier["samples"][POSITION] == bad and len(outlier["samples"]) == B_MICRO
+    assert outlier["worst_samples"][0]["index"] == bad
+    # The mean of the workers' losses, each worker rerun alone, is the loss the run logged at that step.
+    logged = read_scalars(tmp_path / "run.sqlite")["loss"][1][STEP]
+    assert sum(workers["loss"]) / W == pytest.approx(float(logged), rel=1e-5)
