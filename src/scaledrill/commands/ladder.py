@@ -25,6 +25,8 @@ class Outcome:
 def ladder_verb(cfg, run_dir: Path) -> Outcome:
     cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
     plan = plan_ladder(cfg)
+    if plan.target_source != "ladder.target":
+        Console(stderr=True).print(plan.target_source)  # the target the task declared, or why there is none
     if cfg.ladder.search.enabled:
         from scaledrill.ladder.search import SearchSettings
 

@@ -32,6 +32,7 @@ class Rung:
     workers: int
     accum: int
     steps: int  # the rung's optimizer steps: sample budget / B, capped by ladder.max_steps
+    limit: str = ""  # which setting bound `steps`, said in words
 
     @property
     def name(self) -> str:
@@ -59,6 +60,7 @@ class Plan:
     target: Target
     check_every: int
     rungs: list[Rung]
+    target_source: str = "ladder.target"  # where the target came from, or why there is none
 
 
 def _whole(node, key: str, allow_none: bool = False) -> int | None:
@@ -106,14 +108,38 @@ def layout_of(cfg, mode: str, batch: int) -> tuple[int, int]:
     return (batch // fixed, L.accum) if mode == "workers" else (L.workers, batch // fixed)
 
 
-def steps_of(cfg, batch: int) -> int:
-    cap = _whole(cfg.ladder, "max_steps", allow_none=True) or cfg.train.steps
+def steps_of(cfg, batch: int) -> tuple[int, str]:
+    """(steps of the rung at `batch`, which setting bound them): the sample budget // B, capped."""
+    max_steps = _whole(cfg.ladder, "max_steps", allow_none=True)
+    cap, cap_key = (max_steps, "ladder.max_steps") if max_steps else (cfg.train.steps, "train.steps")
     budget = _whole(cfg.ladder, "max_samples", allow_none=True)
     if budget is None:
-        return cap
+        return cap, f"{cap_key}={cap} (no sample budget)"
     if budget < batch:
         raise ConfigError("ladder.max_samples", f"the sample budget is smaller than one global batch of rung B={batch}", budget)
-    return min(cap, budget // batch)
+    if budget // batch <= cap:
+        return budget // batch, f"sample budget ladder.max_samples={budget} // B"
+    return cap, f"{cap_key}={cap} caps the sample budget ({budget} // B = {budget // batch} steps)"
+
+
+def target_of(cfg) -> tuple[Target, str]:
+    """The ladder's target and where it came from: ladder.target when it has a value,
+    else the task's declared goal (`task.goal`: metric, value, reached_when), else none, with why."""
+    target = read_target(cfg.ladder.target)
+    if target.value is not None:
+        return target, "ladder.target"
+    goal = cfg.task.get("goal")
+    name = cfg.task.get("name", "custom")
+    if goal is None or goal.get("value") is None:
+        return target, (
+            f"no target: ladder.target.value is null and task {name} declares no task.goal, so every rung runs its "
+            "whole budget and steps-to-target cannot be fitted; set ladder.target.value (or task.goal)"
+        )
+    try:
+        declared = read_target({"metric": goal.get("metric"), "value": goal.get("value"), "mode": goal.get("reached_when")})
+    except ConfigError as err:
+        raise ConfigError(err.key.replace("ladder.target", "task.goal").replace(".mode", ".reached_when"), err.rule, err.value) from None
+    return declared, f"ladder.target not set: using task {name}'s goal (task.goal)"
 
 
 def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = None, local: bool = False):
@@ -136,7 +162,7 @@ def plan_ladder(cfg) -> Plan:
     node = cfg.ladder
     if node.get("mode") not in MODES:
         raise ConfigError("ladder.mode", f"must be one of {', '.join(MODES)}", node.get("mode"))
-    target = read_target(node.target)
+    target, source = target_of(cfg)
     check_every = _whole(node, "check_every")
     parallel = _whole(node, "parallel")
     if parallel > (os.cpu_count() or 1):
@@ -148,14 +174,14 @@ def plan_ladder(cfg) -> Plan:
     rungs = []
     for batch in batches_of(cfg):
         workers, accum = layout_of(cfg, node.mode, batch)
-        rung = Rung(batch, workers, accum, steps_of(cfg, batch))
+        rung = Rung(batch, workers, accum, *steps_of(cfg, batch))
         try:
             validate_run(rung_config(cfg, rung))
         except ConfigError as err:
             rule = f"{err.rule} — at rung B={batch}, where mode={node.mode} gives W={workers}, k={accum}, {rung.steps} steps"
             raise ConfigError(err.key, rule, err.value) from None
         rungs.append(rung)
-    return Plan(node.mode, target, check_every, rungs)
+    return Plan(node.mode, target, check_every, rungs, source)
 
 
 @dataclass
