@@ -72,6 +72,7 @@ def test_side_by_side_table_has_one_column_each():
 @pytest.mark.parametrize("overrides, key", [
     (["job.dataset_size=0", "job.epochs=1"], "job.dataset_size"),
     (["job.epochs=1"], "job.dataset_size"),
+    (["job.dataset_size=100"], "job.epochs"),
     (["job.dataset_size=100", "job.epochs=-1"], "job.epochs"),
     (["job.dataset_size=100", "job.epochs=1", "job.steps=5"], "job.steps"),
     (["job.baseline.batch=256"], "job.baseline.devices"),

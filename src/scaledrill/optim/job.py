@@ -83,6 +83,8 @@ def job_of(node) -> Job:
         raise ConfigError("job.epochs", "must be null or a number of passes > 0", epochs)
     if epochs is not None and steps is not None:
         raise ConfigError("job.steps", "set job.epochs or job.steps, not both", steps)
+    if size is not None and epochs is None and steps is None:
+        raise ConfigError("job.epochs", "the real job needs a length with job.dataset_size: set job.epochs or job.steps")
     if epochs is not None and size is None:
         raise ConfigError("job.dataset_size", "is needed to turn job.epochs into steps", None)
     if devices is not None and batch is None:
