@@ -2,7 +2,8 @@
 
 1. check    — accumulation, virtual workers and real processes match the true batch
 2. ladder   — the digits recipe at growing global batches, with SGD and with LAMB
-3. forecast — time and cost of each rung on an example cluster of our own invention
+3. forecast — time and cost of a described real job (a 302M-parameter transformer, counted on the
+               meta device) on an example cluster of our own invention, against its 8-device baseline
 4. diverge  — a recipe scaled too far blows up; replay tries fixes from its last healthy checkpoint,
                over the log of an invented cluster job that ran the same recipe
 5. report   — one HTML page with every picture
@@ -62,8 +63,9 @@ def main() -> None:
          "ladder", *LADDER, "optim=sgd", "optim.lr=0.05", f"hydra.run.dir={out}/ladder-sgd")
     step("2b. ladder with LAMB (layer-wise trust ratio)",
          "ladder", *LADDER, "optim=lamb", "optim.lr=0.005", f"hydra.run.dir={out}/ladder-lamb")
-    step("3. forecast: what would each rung cost on the example cluster?",
-         "forecast", "task=digits", f"forecast.ladder={out}/ladder-sgd", f"hydra.run.dir={out}/forecast")
+    step("3. forecast: one epoch of 4M sequences for a 302M-parameter transformer, from 8 devices at batch 256 to 256 devices",
+         "forecast", "+forecast/model=transformer", "job.dataset_size=4000000", "job.epochs=1",
+         "job.baseline.batch=256", "job.baseline.devices=8", "batches=[256,1024,4096]", f"hydra.run.dir={out}/forecast")
     step("4a. a recipe scaled 64x by the linear rule diverges (detectors stop it, an incident is written)",
          "run", "+scenario=divergence", "train.progress=false", f"hydra.run.dir={out}/blowup")
     invent_cluster_log(out / "blowup", out / "cluster-job.csv")

@@ -16,6 +16,8 @@ CHARLM = ("task=charlm", "task.model.d_model=16", "task.model.layers=1", "task.d
 
 
 def run(tmp_path, *overrides):
+    if any(o.startswith("+check.step") for o in overrides) and not any(o.startswith("check.paths") for o in overrides):
+        overrides = (*overrides, "check.paths=[accumulation,fused]")  # a step in processes: test_check_cli.py
     result = check_verb(make_config(*overrides, name="check"), tmp_path)
     return result.exit_code, json.loads((tmp_path / "check.json").read_text())
 

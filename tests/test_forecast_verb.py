@@ -93,7 +93,7 @@ def test_flops_and_bytes_are_measured_on_the_task_model(tmp_path):
     assert doc["assumptions"]["flops_per_sample"] == 13312 + 13312 + 9216
     # float32 weights and biases: 4·(32·64 + 64 + 64·64 + 64 + 64·8 + 8) bytes
     assert doc["assumptions"]["grad_bytes"] == 4 * 6792
-    assert doc["assumptions"]["sources"]["flops_per_sample"] == "counted on task teacher"
+    assert doc["assumptions"]["sources"]["flops_per_sample"] == "counted (forward+backward) on task teacher"
 
 
 @pytest.mark.parametrize(

@@ -80,7 +80,7 @@ def test_ladder_json_and_the_two_modes(tmp_path):
     out = ladder_verb(ladder_cfg(*SMALL), tmp_path / "workers")
     saved = json.loads((tmp_path / "workers" / "ladder.json").read_text())
     assert saved == json.loads(json.dumps(out.payload)) and out.exit_code == 0
-    assert set(saved) == {"grow", "goal", "rungs", "fit", "noise_scale_measured", "search"}
+    assert set(saved) == {"grow", "goal", "goal_source", "rungs", "fit", "noise_scale_measured", "agreement", "search"}
     rungs = saved["rungs"]
     assert [r["global_batch"] for r in rungs] == [4, 8, 16] and [r["workers"] for r in rungs] == [2, 4, 8]
     assert [r["lr"] for r in rungs] == pytest.approx([0.2, 0.4, 0.8])  # linear rule, Goyal et al. 2017

@@ -50,7 +50,7 @@ class Runner:
             run += ["step:accumulation"] if "accumulation" in s.paths else []
             run += ["step:workers"] if wanted_grads else []
             if "processes" in s.paths:
-                skipped["processes"] = "a custom step runs on W threads in one process"
+                self._processes("step:processes", run, skipped)
             return run, skipped
         run += ["accumulation"] if "accumulation" in s.paths else []
         for g in wanted_grads:
@@ -59,15 +59,19 @@ class Runner:
             else:
                 run.append(f"workers:{g}")
         if "processes" in s.paths:
-            for backend in s.backends:
-                name = f"processes:{backend}"
-                if process_count(self.cfg) is None:
-                    skipped[name] = "one worker cannot be split over processes"
-                elif not available(backend, self.cfg.layout.get("mpiexec")):
-                    skipped[name] = f"{backend} is not available here"
-                else:
-                    run.append(name)
+            self._processes("processes", run, skipped)
         return run, skipped
+
+    def _processes(self, prefix: str, run: list, skipped: dict) -> None:
+        """`prefix:backend` for every backend of check.backends this layout and machine can run."""
+        for backend in self.settings.backends:
+            name = f"{prefix}:{backend}"
+            if process_count(self.cfg) is None:
+                skipped[name] = "one worker cannot be split over processes"
+            elif not available(backend, self.cfg.layout.get("mpiexec")):
+                skipped[name] = f"{backend} is not available here"
+            else:
+                run.append(name)
 
     def reference(self, batchnorm: str | None = None, model_hook=None) -> Trajectory:
         return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook, self.ref_dtype)
@@ -84,6 +88,10 @@ class Runner:
             self.variants += 1
             where = self.run_dir if given is self.cfg else self.run_dir / f"variant-{self.variants}"
             return run_processes(cfg, detail, steps, where)
+        if kind == "step" and detail.startswith("processes:"):
+            self.variants += 1
+            where = self.run_dir if given is self.cfg else self.run_dir / f"variant-{self.variants}"
+            return run_processes(cfg, detail.partition(":")[2], steps, where, step_node=self.settings.step)
         if kind == "step":
             L = cfg.layout
             laid = cfg if detail == "workers" else variant(cfg, **{"layout.workers": 1, "layout.accum": L.workers * L.accum})

@@ -21,6 +21,9 @@ then clips (`optim.clip_norm`) and runs the recipe's optimizer, as the engine do
 Why threads: each worker really holds its own model and gradients, and `reduce`
 really waits for all of them (a barrier), so a step that syncs on the wrong
 micro-step leaves gradients that differ between workers, as on a cluster. The
+same step also runs in P real processes (check/processes.py): each hosts V = W/P
+of the workers as threads, and `reduce` sums the V slots in id order, all-reduces
+that sum over the processes (gloo or MPI) and divides by W. The
 harness also watches where things happen: how many forward passes each worker had
 run when it called `reduce` or a torch clipping function (for the diagnosis).
 """
@@ -83,15 +86,36 @@ class ThreadGroup:
         return total / len(self.slots)
 
 
+class ProcessThreadGroup(ThreadGroup):
+    """V threads of one of P processes: the local sum (slot order), then one all-reduce over the processes."""
+
+    def __init__(self, local: int, workers: int, collective, timeout_s: float):
+        super().__init__(local, timeout_s)
+        self.workers, self.collective, self.total = workers, collective, None
+
+    def average(self, worker: int, tensor: torch.Tensor) -> torch.Tensor:
+        self.slots[worker] = tensor.detach().clone()
+        if self.barrier.wait() == 0:  # one thread per process talks to the other processes
+            total = self.slots[0].clone()
+            for other in self.slots[1:]:
+                total += other
+            self.collective.all_reduce(total)
+            self.total = total
+        self.barrier.wait()
+        out = self.total / self.workers
+        self.barrier.wait()  # nobody starts the next reduce before everyone has read this one
+        return out
+
+
 class Reducer:
-    def __init__(self, group: ThreadGroup, worker: int, counter: list, probe: Probe | None):
-        self.group, self.worker, self.workers = group, worker, len(group.slots)
+    def __init__(self, group: ThreadGroup, slot: int, worker: int, workers: int, counter: list, probe: Probe | None):
+        self.group, self.slot, self.worker, self.workers = group, slot, worker, workers
         self.counter, self.probe = counter, probe
 
     def __call__(self, tensor: torch.Tensor) -> torch.Tensor:
         if self.probe is not None:
             self.probe.reduce_at.append(self.counter[0])
-        return self.group.average(self.worker, tensor)
+        return self.group.average(self.slot, tensor)
 
 
 class _ClipWatch:
@@ -122,24 +146,35 @@ class _ClipWatch:
         return False
 
 
-def worker_micro_batches(data, sampler, layout, step: int, dtype) -> list[list[dict]]:
-    index = sampler.worker_batches(step, range(layout.workers))  # [k, W, b]
+def worker_micro_batches(data, sampler, layout, step: int, dtype, workers: range | None = None) -> list[list[dict]]:
+    workers = range(layout.workers) if workers is None else workers
+    index = sampler.worker_batches(step, workers)  # [k, V, b]
     return [
         [dict(cast(data.train.take(index[m, w]), dtype), index=index[m, w]) for m in range(layout.accum)]
-        for w in range(layout.workers)
+        for w in range(len(workers))
     ]
 
 
-def run_step_function(cfg, step_fn, steps: int, model_hook=None, timeout_s: float = 60.0) -> tuple[Trajectory, Probe]:
-    """Run the user's step on W thread-workers for `steps` optimizer steps."""
+def run_step_function(
+    cfg, step_fn, steps: int, model_hook=None, timeout_s: float = 60.0, collective=None
+) -> tuple[Trajectory, Probe]:
+    """Run the user's step on W thread-workers for `steps` optimizer steps; with a `collective`,
+    this process's V = W/P of them, reducing over all processes."""
     layout = Layout.from_config(cfg.layout)
     W, dtype = layout.workers, DTYPES[cfg.train.dtype]
+    if collective is None:
+        mine = range(W)
+        new_group = lambda: ThreadGroup(W, timeout_s)  # noqa: E731
+    else:
+        V = W // collective.size
+        mine = range(collective.rank * V, (collective.rank + 1) * V)
+        new_group = lambda: ProcessThreadGroup(V, W, collective, timeout_s)  # noqa: E731
     task = build_model(cfg, dtype)
     if model_hook is not None:
         model_hook(task.model)
     set_group_size(task.model, layout.micro_batch)
-    models = [copy.deepcopy(task.model) for _ in range(W)]
-    counters = [[0] for _ in range(W)]
+    models = [copy.deepcopy(task.model) for _ in mine]
+    counters = [[0] for _ in mine]
     for model, counter in zip(models, counters):
         model.register_forward_hook(lambda *_, c=counter: c.__setitem__(0, c[0] + 1))
     optimizers = [build_optimizer(list(m.named_parameters()), cfg.optim) for m in models]
@@ -149,8 +184,8 @@ def run_step_function(cfg, step_fn, steps: int, model_hook=None, timeout_s: floa
     out = Trajectory([n for n, _ in models[0].named_parameters()])
     first_grads = None
     for step in range(steps):
-        micro = worker_micro_batches(task.data, sampler, layout, step, dtype)
-        group = ThreadGroup(W, timeout_s)
+        micro = worker_micro_batches(task.data, sampler, layout, step, dtype, mine)
+        group = new_group()
         errors: dict[int, BaseException] = {}
 
         def work(w):
@@ -158,12 +193,13 @@ def run_step_function(cfg, step_fn, steps: int, model_hook=None, timeout_s: floa
                 p.grad = None
             counters[w][0] = 0
             try:
-                step_fn(models[w], task.loss, micro[w], Reducer(group, w, counters[w], probe if step == 0 and w == 0 else None))
+                reducer = Reducer(group, w, mine[w], W, counters[w], probe if step == 0 and w == 0 else None)
+                step_fn(models[w], task.loss, micro[w], reducer)
             except BaseException as err:  # noqa: BLE001 - reported below with the worker id
                 errors[w] = err
                 group.barrier.abort()
 
-        threads = [threading.Thread(target=work, args=(w,), daemon=True) for w in range(W)]
+        threads = [threading.Thread(target=work, args=(w,), daemon=True) for w in range(len(mine))]
         with _ClipWatch(probe, counters[0], threads if step == 0 else [None]):
             for t in threads:
                 t.start()
@@ -171,7 +207,7 @@ def run_step_function(cfg, step_fn, steps: int, model_hook=None, timeout_s: floa
                 t.join()
         if errors:
             w, err = min(errors.items(), key=lambda kv: isinstance(kv[1], threading.BrokenBarrierError))
-            raise WorkerFailed(f"check.step: worker {w}'s step raised {type(err).__name__}: {err}")
+            raise WorkerFailed(f"check.step: worker {mine[w]}'s step raised {type(err).__name__}: {err}")
         for model, opt in zip(models, optimizers):
             params = list(model.parameters())
             if any(p.grad is None for p in params):

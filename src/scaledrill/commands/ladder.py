@@ -25,6 +25,8 @@ class Outcome:
 def ladder_verb(cfg, run_dir: Path) -> Outcome:
     cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
     plan = plan_ladder(cfg)
+    if plan.goal_source != "ladder.goal":
+        Console(stderr=True).print(plan.goal_source)  # the goal the task declared, or why there is none
     if cfg.ladder.search.enabled:
         from scaledrill.ladder.search import SearchSettings
 

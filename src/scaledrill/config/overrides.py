@@ -14,6 +14,11 @@ How:
    pinned on its own.
 3. Stop when the composition equals the saved config; give up, with a
    CheckpointError, if it never does.
+
+A run composed with config directories of the user's own (`--config-dir`,
+`hydra.searchpath`) is rebuilt with them: Hydra records them in the run's
+`.hydra/hydra.yaml` (`search_dirs`), their groups' option files count in step 1,
+and every composition gets the same search path (`searchpath_override`).
 """
 
 from contextlib import contextmanager
@@ -39,6 +44,28 @@ def hydra_session():
         return
     with initialize_config_dir(str(CONFIG_DIR), version_base=None):
         yield
+
+
+def search_dirs(run_dir: Path) -> list[Path]:
+    """Config directories beyond the shipped conf/ the run in `run_dir` was composed with (empty if unknown)."""
+    recorded = Path(run_dir) / ".hydra" / "hydra.yaml"
+    if not recorded.is_file():
+        return []
+    try:
+        sources = OmegaConf.load(recorded).hydra.runtime.config_sources
+    except Exception:  # an unreadable record: rebuild from conf/ alone
+        return []
+    out = []
+    for source in sources:
+        path = Path(str(source.get("path", "")))
+        if source.get("schema") == "file" and path.is_dir() and path.resolve() != CONFIG_DIR:
+            out.append(path.resolve())
+    return out
+
+
+def searchpath_override(dirs) -> list[str]:
+    """The override that puts `dirs` on Hydra's config search path (none when there are none)."""
+    return [f"hydra.searchpath={render([f'file://{d}' for d in dirs])}"] if dirs else []
 
 
 def compose_run(overrides: list[str]):
@@ -76,19 +103,21 @@ def _plain(cfg) -> dict:
     return {k: v for k, v in data.items() if k not in IGNORED}
 
 
-def _group_choices(saved: dict) -> list[str]:
+def _group_choices(saved: dict, dirs=()) -> list[str]:
     """Step 1: the option of each group closest to the saved node (literal values only)."""
     choices = []
-    for group in sorted(p for p in CONFIG_DIR.iterdir() if p.is_dir() and p.name in saved):
-        mine = leaves(saved[group.name])
+    roots = [CONFIG_DIR, *dirs]
+    names = sorted({p.name for root in roots for p in root.iterdir() if p.is_dir() and p.name in saved})
+    for name in names:
+        mine = leaves(saved[name])
         best, best_score = None, None
-        for option in sorted(group.glob("*.yaml")):
-            theirs = leaves(_option_values(group.name, option))
+        for option in sorted(o for root in roots for o in (root / name).glob("*.yaml")):
+            theirs = leaves(_option_values(name, option))
             score = sum(1 for k, v in theirs.items() if k in mine and mine[k] == v) - len(set(theirs) - set(mine))
             if best_score is None or score > best_score:
                 best, best_score = option.stem, score
         if best is not None:
-            choices.append(f"{group.name}={best}")
+            choices.append(f"{name}={best}")
     return choices
 
 
@@ -104,22 +133,29 @@ def _option_values(group: str, option: Path) -> dict:
     return OmegaConf.to_container(OmegaConf.merge(values, raw), resolve=False)
 
 
-def rebuild_overrides(saved: dict, where: str = "config.yaml") -> list[str]:
-    """Overrides whose composition equals `saved` (a resolved run config, as a dict) key for key."""
+def rebuild_overrides(saved: dict, where: str = "config.yaml", dirs=()) -> list[str]:
+    """Overrides whose composition equals `saved` (a resolved run config, as a dict) key for key;
+    `dirs`: the run's own config directories (search_dirs), whose search path leads the list."""
     saved = {k: v for k, v in saved.items() if k not in IGNORED}
     target = leaves(saved)
-    overrides = _group_choices(saved)
+    overrides = [*searchpath_override(dirs), *_group_choices(saved, dirs)]
     with hydra_session():
         for _ in range(len(target) + 50):
             try:
                 have = leaves(_plain(compose_run(overrides)))
             except Exception as err:  # an option or key the configs no longer have
-                raise CheckpointError(f"{where}: cannot rebuild its configuration from configs/ ({type(err).__name__}: {err})") from None
+                raise CheckpointError(
+                    f"{where}: cannot rebuild its configuration from the config directories "
+                    f"{[str(d) for d in (CONFIG_DIR, *dirs)]} ({type(err).__name__}: {err})"
+                ) from None
             step = _first_difference(target, have)  # step 2
             if step is None:
                 return overrides  # step 3
             overrides += _replace_subtree(step, have, saved)
-    raise CheckpointError(f"{where}: cannot rebuild its configuration from configs/ (still differs after {overrides})")
+    raise CheckpointError(
+        f"{where}: cannot rebuild its configuration from the config directories "
+        f"{[str(d) for d in (CONFIG_DIR, *dirs)]} (still differs after {overrides})"
+    )
 
 
 def _first_difference(target: dict, have: dict) -> str | None:

@@ -99,6 +99,7 @@ class ScheduleConfig:
     warmup_steps: int = 0  # or set warmup_epochs instead
     warmup_epochs: Optional[float] = None
     warmup_start: float = 0.0  # factor of the peak rate at step 0
+    total_steps: Optional[int] = None  # the schedule's horizon; null = train.steps
 
 
 @dataclass
@@ -121,6 +122,22 @@ class StepConfig(ScheduleConfig):
 
 
 @dataclass
+class BaselineConfig:
+    batch: Optional[int] = None  # the global batch the recipe is moved from
+    devices: Optional[int] = None  # the devices it ran on
+
+
+@dataclass
+class JobConfig:
+    """The real job the rehearsal stands in for (optim/job.py); null = not described."""
+
+    dataset_size: Optional[int] = None  # training samples of the real dataset
+    epochs: Optional[float] = None  # passes over it (or set steps)
+    steps: Optional[int] = None  # optimizer steps of the real run (instead of epochs)
+    baseline: BaselineConfig = field(default_factory=BaselineConfig)
+
+
+@dataclass
 class RunConfig:
     """The root of `scaledrill run` (and of every verb that trains: recipe, check, replay, ladder)."""
 
@@ -132,6 +149,7 @@ class RunConfig:
     sync: Any = MISSING
     telemetry: Any = MISSING
     train: TrainConfig = field(default_factory=TrainConfig)
+    job: Any = None  # the real job (recipe and forecast compose it: `job=imagenet`, conf/job/)
     resume: Optional[str] = None  # path of a checkpoint to continue from
     debug: bool = False  # show Python tracebacks on errors
 
@@ -147,4 +165,5 @@ GROUPS = {
     "sync": {"base_exact": SyncConfig, "base_sign": SignConfig, "base_topk": TopkConfig, "base_randk": RandkConfig,
              "base_qsgd": QsgdConfig, "base_powersgd": PowersgdConfig},
     "telemetry": {"base_telemetry": TelemetryConfig},
+    "job": {"base_job": JobConfig},
 }

@@ -132,12 +132,16 @@ class ClusterConfig:
     compression_ratio: Optional[float] = None  # null = 1, or the ratio a run's summary reports
     ladder: Optional[str] = None  # path to a ladder.json for steps-to-target per batch
     run: Optional[str] = None  # path to a run directory's summary.json
+    model: Any = None  # the real model to count, e.g. {_target_: mypkg.Net, width: 64}; null = the task's model
+    sample_shape: Optional[list[int]] = None  # one sample's shape without the batch dimension, e.g. [3, 224, 224]
+    sample_dtype: str = "float32"  # the input's dtype: float32 | float16 | bfloat16 | int64 | int32 (token ids)
 
 
 @dataclass
 class ForecastRoot:
     forecast: Any = MISSING
     task: Any = MISSING
+    job: Any = None  # the real job (conf/job/)
     batches: list[int] = field(default_factory=lambda: [256, 1024, 4096, 16384])  # projected when forecast.ladder is null
     debug: bool = False  # show Python tracebacks on errors
 

@@ -25,6 +25,7 @@ CLUSTER_KEYS = (
     "algorithm", "overlap", "price_per_device_hour",
 )  # fmt: skip
 INPUT_KEYS = ("precision", "flops_per_sample", "grad_bytes", "compression_ratio", "ladder", "run")
+MODEL_KEYS = ("model", "sample_shape", "sample_dtype")  # the real model, counted on the meta device (model.py)
 
 
 def _key(name: str) -> str:
@@ -105,10 +106,11 @@ def validate(node: Mapping) -> Cluster:
 
     Also checks the optional inputs: `flops_per_sample` and `grad_bytes` (null =
     measured from the model), `compression_ratio` (null = 1 or a run's summary),
-    `ladder` and `run` (null or a path). Unknown keys are rejected, since a typo
+    `ladder` and `run` (null or a path); `model`, `sample_shape` and `sample_dtype`
+    are checked when the model is counted (model.py). Unknown keys are rejected, since a typo
     would otherwise silently leave a default in place.
     """
-    unknown = sorted(set(node) - set(CLUSTER_KEYS) - set(INPUT_KEYS))
+    unknown = sorted(set(node) - set(CLUSTER_KEYS) - set(INPUT_KEYS) - set(MODEL_KEYS))
     if unknown:
         raise ConfigError(_key(unknown[0]), "is not a forecast setting", None)
     values = {}
@@ -126,6 +128,8 @@ def validate(node: Mapping) -> Cluster:
     for name in ("ladder", "run"):
         if values[name] is not None and not isinstance(values[name], str):
             raise ConfigError(_key(name), "must be null or a path", values[name])
+    if node.get("model") is not None and node.get("sample_shape") is None:
+        raise ConfigError(_key("sample_shape"), "is needed with forecast.model: the shape of one sample", None)
     precision = values["precision"] or "fp32"
     values["peak_tflops"] = peak_of(values["peak_tflops"], precision)
     return Cluster(**{name: values[name] for name in CLUSTER_KEYS}, precision=precision)

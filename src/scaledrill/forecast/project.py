@@ -21,12 +21,18 @@ simple on purpose so every term can be read off the forecast:
     step_s     = compute_s + comm_s − hidden_s
     time_to_target_s = steps_to_target · step_s
     device_hours     = devices · time_to_target_s / 3600;  cost = device_hours · price
+
+The baseline (the batch and devices the recipe is moved from, `job.baseline`) is
+projected the same way on its own devices, with the cluster's device type and
+links; every other row then states speed_up = baseline time / its time and
+cost_ratio = its cost / baseline cost.
 """
 
 import math
 from dataclasses import asdict, dataclass, replace
 
 from scaledrill.forecast.cluster import Cluster
+from scaledrill.errors import ConfigError
 from scaledrill.forecast.collectives import allreduce_seconds
 
 BACKWARD_SHARE = 2 / 3
@@ -82,6 +88,42 @@ def project_step(
     return StepForecast(compute_s=compute, comm_s=comm, hidden_s=hidden, step_s=compute + comm - hidden, wire_bytes=wire)
 
 
+def _row(used: Cluster, batch: int, steps, flops_per_sample, grad_bytes, compression_ratio) -> dict:
+    step = project_step(used, batch, flops_per_sample, grad_bytes, compression_ratio)
+    row = {"global_batch": batch, "devices": used.devices, "steps_to_target": steps}
+    row |= asdict(step) | {"exposed_comm_s": step.exposed_comm_s}
+    if steps is None:
+        return row | {"time_to_target_s": None, "device_hours": None, "cost": None}
+    seconds = float(steps) * step.step_s
+    hours = used.devices * seconds / 3600
+    return row | {"time_to_target_s": seconds, "device_hours": hours, "cost": hours * used.price_per_device_hour}
+
+
+def project_baseline(
+    cluster: Cluster, batch: int, devices: int, steps, flops_per_sample: float, grad_bytes: float,
+    compression_ratio: float | None = None,
+) -> dict:  # fmt: skip
+    """The baseline row: `batch` on `devices` devices of the cluster's kind, in whole nodes once it fills one."""
+    per_node = min(cluster.devices_per_node, devices)
+    if devices % per_node:
+        raise ConfigError(
+            "job.baseline.devices", f"must fit whole nodes: at most forecast.devices_per_node={cluster.devices_per_node} "
+            "or a multiple of it", devices,
+        )  # fmt: skip
+    used = devices_for(replace(cluster, devices=devices, devices_per_node=per_node), batch)
+    row = _row(used, batch, steps, flops_per_sample, grad_bytes, compression_ratio)
+    return row | {"baseline": True, "cheapest": False, "fastest": False}
+
+
+def compare_to_baseline(rows: list[dict], baseline: dict) -> None:
+    """Add speed_up (baseline time / row time) and cost_ratio (row cost / baseline cost) to each row."""
+    base_time, base_cost = baseline["time_to_target_s"], baseline["cost"]
+    for row in rows:
+        time, cost = row["time_to_target_s"], row["cost"]
+        row["speed_up"] = base_time / time if base_time is not None and time else None
+        row["cost_ratio"] = cost / base_cost if cost is not None and base_cost else None
+
+
 def project_rungs(
     cluster: Cluster,
     rungs: list[dict],
@@ -97,16 +139,7 @@ def project_rungs(
     rows = []
     for rung in rungs:
         batch, steps = int(rung["global_batch"]), rung.get("steps_to_target")
-        used = devices_for(cluster, batch)
-        step = project_step(used, batch, flops_per_sample, grad_bytes, compression_ratio)
-        row = {"global_batch": batch, "devices": used.devices, "steps_to_target": steps}
-        row |= asdict(step) | {"exposed_comm_s": step.exposed_comm_s}
-        if steps is None:
-            row |= {"time_to_target_s": None, "device_hours": None, "cost": None}
-        else:
-            seconds = float(steps) * step.step_s
-            hours = used.devices * seconds / 3600
-            row |= {"time_to_target_s": seconds, "device_hours": hours, "cost": hours * cluster.price_per_device_hour}
+        row = _row(devices_for(cluster, batch), batch, steps, flops_per_sample, grad_bytes, compression_ratio)
         rows.append(row | {"cheapest": False, "fastest": False})
     reached = [row for row in rows if row["time_to_target_s"] is not None]
     if reached:

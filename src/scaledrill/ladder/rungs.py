@@ -1,7 +1,7 @@
 """The plan of a batch-size ladder: which layout each rung runs, for how long, to what target.
 
-Why two ways to grow the batch: `mode=workers` keeps the per-worker batch b and
-adds workers; `mode=accum` keeps the workers and accumulates more micro-batches.
+Why two ways to grow the batch: `grow=workers` keeps the per-worker batch b and
+adds workers; `grow=accum` keeps the workers and accumulates more micro-batches.
 Both give the same global batch B, and with exact averaging the same gradients,
 but not the same run wherever a worker's own computation matters: compression
 and error feedback act on each worker's gradient, and BatchNorm statistics and
@@ -33,6 +33,7 @@ class Rung:
     workers: int
     accum: int
     steps: int  # the rung's optimizer steps: sample budget / B, capped by ladder.max_steps
+    limit: str = ""  # which setting bound `steps`, said in words
 
     @property
     def name(self) -> str:
@@ -60,6 +61,7 @@ class Plan:
     goal: Goal
     check_every: int
     rungs: list[Rung]
+    goal_source: str = "ladder.goal"  # where the goal came from, or why there is none
 
 
 def _whole(node, key: str, allow_none: bool = False) -> int | None:
@@ -106,14 +108,39 @@ def layout_of(cfg, grow: str, batch: int) -> tuple[int, int]:
     return (batch // fixed, L.accum) if grow == "workers" else (L.workers, batch // fixed)
 
 
-def steps_of(cfg, batch: int) -> int:
-    cap = _whole(cfg.ladder, "max_steps", allow_none=True) or cfg.train.steps
+def steps_of(cfg, batch: int) -> tuple[int, str]:
+    """(steps of the rung at `batch`, which setting bound them): the sample budget // B, capped."""
+    max_steps = _whole(cfg.ladder, "max_steps", allow_none=True)
+    cap, cap_key = (max_steps, "ladder.max_steps") if max_steps else (cfg.train.steps, "train.steps")
     budget = _whole(cfg.ladder, "max_samples", allow_none=True)
     if budget is None:
-        return cap
+        return cap, f"{cap_key}={cap} (no sample budget)"
     if budget < batch:
         raise ConfigError("ladder.max_samples", f"the sample budget is smaller than one global batch of rung B={batch}", budget)
-    return min(cap, budget // batch)
+    if budget // batch <= cap:
+        return budget // batch, f"sample budget ladder.max_samples={budget} // B"
+    return cap, f"{cap_key}={cap} caps the sample budget ({budget} // B = {budget // batch} steps)"
+
+
+def goal_of(cfg) -> tuple[Goal, str]:
+    """The ladder's goal and where it came from: ladder.goal when it has a value,
+    else the task's declared goal (`task.goal`: metric, value, reached_when), else none, with why."""
+    goal = read_goal(cfg.ladder.goal)
+    if goal.value is not None:
+        return goal, "ladder.goal"
+    declared = cfg.task.get("goal")
+    name = cfg.task.get("name", "custom")
+    if declared is None or declared.get("value") is None:
+        return goal, (
+            f"no goal: ladder.goal.value is null and task {name} declares no task.goal, so every rung runs its "
+            "whole budget and steps-to-goal cannot be fitted; set ladder.goal.value (or task.goal)"
+        )
+    node = OmegaConf.create({k: declared.get(k) for k in ("metric", "value", "reached_when")})
+    try:
+        found = read_goal(node)
+    except ConfigError as err:
+        raise ConfigError(err.key.replace("ladder.goal", "task.goal"), err.rule, err.value) from None
+    return found, f"ladder.goal not set: using task {name}'s goal (task.goal)"
 
 
 def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = None, local: bool = False):
@@ -136,7 +163,7 @@ def plan_ladder(cfg) -> Plan:
     node = cfg.ladder
     if node.grow not in GROWTHS:
         raise ConfigError("ladder.grow", f"must be one of {', '.join(GROWTHS)}", node.grow)
-    goal = read_goal(node.goal)
+    goal, source = goal_of(cfg)
     check_every = _whole(node, "check_every")
     parallel = _whole(node, "parallel")
     if parallel > (os.cpu_count() or 1):
@@ -148,14 +175,14 @@ def plan_ladder(cfg) -> Plan:
     rungs = []
     for batch in batches_of(cfg):
         workers, accum = layout_of(cfg, node.grow, batch)
-        rung = Rung(batch, workers, accum, steps_of(cfg, batch))
+        rung = Rung(batch, workers, accum, *steps_of(cfg, batch))
         try:
             validate_run(rung_config(cfg, rung))
         except ConfigError as err:
             rule = f"{err.rule} — at rung B={batch}, where grow={node.grow} gives W={workers}, k={accum}, {rung.steps} steps"
             raise ConfigError(err.key, rule, err.value) from None
         rungs.append(rung)
-    return Plan(node.grow, goal, check_every, rungs)
+    return Plan(node.grow, goal, check_every, rungs, source)
 
 
 @dataclass

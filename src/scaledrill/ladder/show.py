@@ -45,21 +45,44 @@ def render_ladder(payload: dict) -> Table:
     g = payload["goal"]
     goal = "no target" if g["value"] is None else f"{g['metric']} {g['reached_when']} {g['value']:g}"
     table = Table(title=f"ladder (grow={payload['grow']}, {goal})")
-    for col in ("B", "W·b·k", "lr", "steps", "samples", "final", "diverged", "noise scale", "regime", "wall s"):
+    for col in ("B", "W·b·k", "lr", "steps", "samples", "final", "diverged", "noise scale", "regime", "wall s", "bound"):
         table.add_column(col, justify="right")
     for r in payload["rungs"]:
         steps = r.get("error") or _g(r["steps_to_target"], "d")
         table.add_row(
             str(r["global_batch"]), f"{r['workers']}·{r['micro_batch']}·{r['accum']}", _g(r["lr"]), steps,
             _g(r["samples_to_target"], ","), _g(r["final_metric"]), "yes" if r["diverged"] else "no",
-            _g(r["noise_scale"], ".3g"), r["regime"] or "-", _g(r["wall_seconds"], ".1f"),
+            _g(r["noise_scale"], ".3g"), r["regime"] or "-", _g(r["wall_seconds"], ".1f"), _bound(r.get("step_limit")),
         )
-    fit, noise = payload["fit"], payload["noise_scale_measured"]
-    if fit:
-        table.caption = (
-            f"S_min={_g(fit['s_min'])}  E_min={_g(fit['e_min'])}  B_crit={_g(fit['b_crit'])}  "
-            f"measured noise scale (median)={_g(noise)}  (McCandlish et al. 2018: B_crit ≈ B_noise)"
-        )
-    else:
-        table.caption = "no fit: fewer than two rungs reached the target"
+    table.caption = "\n".join(caption_lines(payload))
     return table
+
+
+def caption_lines(payload: dict) -> list[str]:
+    """Where the goal came from, the fit, and whether B_crit and the measured noise scale agree."""
+    source = payload.get("goal_source") or "ladder.goal"
+    lines = [] if source == "ladder.goal" else [source]
+    fit, noise, agree = payload["fit"], payload["noise_scale_measured"], payload.get("agreement")
+    if not fit:
+        if payload["goal"]["value"] is not None:
+            lines.append("no fit: fewer than two rungs reached the goal")
+        return lines
+    lines.append(f"S_min={_g(fit['s_min'])}  E_min={_g(fit['e_min'])}  B_crit={_g(fit['b_crit'])}  "
+                 f"measured noise scale (median)={_g(noise)}")  # fmt: skip
+    if agree and agree["flagged"]:
+        lines.append(
+            f"B_crit and the measured noise scale disagree by {agree['ratio']:.1f}× (more than 2×): McCandlish et al. "
+            "2018 expect them to agree roughly. The noise scale grows during training and was measured along the rungs' "
+            "runs, while B_crit is fitted to steps-to-target over few rungs; add rungs around both values, check the "
+            "lr at the large rungs, and trust neither number alone."
+        )
+    elif agree:
+        lines.append(f"B_crit and the measured noise scale agree within {agree['ratio']:.2g}× (McCandlish et al. 2018)")
+    return lines
+
+
+def _bound(limit: str | None) -> str:
+    """The setting that bound a rung's steps, short: max_samples, max_steps or train.steps (ladder.json has the sentence)."""
+    if not limit:
+        return "-"
+    return "max_samples" if limit.startswith("sample budget") else limit.split("=")[0].replace("ladder.", "")

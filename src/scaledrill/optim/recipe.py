@@ -17,7 +17,7 @@ from scaledrill.errors import DataError
 from scaledrill.optim.build import decay_of, validate_optim
 from scaledrill.optim.groups import describe_exclusions
 from scaledrill.optim.scaling import scaled_lr, validate_scaling
-from scaledrill.optim.schedules import Schedule, build_schedule, check_warmup, validate_schedule
+from scaledrill.optim.schedules import Schedule, build_schedule, check_warmup, horizon_of, validate_schedule
 
 FORMULAS = {
     "none": "lr = base_lr",
@@ -69,23 +69,32 @@ class Recipe:
         return out
 
 
-def validate(cfg) -> None:
-    """Check the optim, scaling and schedule groups; raise ConfigError naming the first bad key."""
+def validate(cfg, horizon: int | None = None) -> None:
+    """Check the optim, scaling and schedule groups; raise ConfigError naming the first bad key.
+    `horizon`: the schedule's length in steps when it is not the rehearsal's (the real job's)."""
     validate_optim(cfg.optim)
     validate_scaling(cfg.scaling)
-    validate_schedule(cfg.schedule, cfg.train.steps)
+    validate_schedule(cfg.schedule, horizon_of(cfg.schedule, cfg.train.steps) if horizon is None else horizon)
 
 
-def resolve_recipe(cfg, layout, dataset_size: int | None, tail: str) -> Recipe:
-    """The recipe of `cfg` at `layout` on a training set of `dataset_size` samples (None: a stream)."""
-    validate(cfg)
-    B, total = layout.global_batch, cfg.train.steps
+def resolve_recipe(
+    cfg, layout, dataset_size: int | None, tail: str, steps: int | None = None, length: str = "train.steps"
+) -> Recipe:
+    """The recipe of `cfg` at `layout` on a training set of `dataset_size` samples (None: a stream).
+
+    `steps`: the run length when it is not the rehearsal's `train.steps` (the real job's,
+    named `length` in errors); the schedule then spans exactly those steps.
+    """
+    validate(cfg, steps)
+    B = layout.global_batch
+    total = cfg.train.steps if steps is None else steps
+    horizon = horizon_of(cfg.schedule, total) if steps is None else steps
     if dataset_size is not None and dataset_size < B:
         raise DataError(f"the training set has {dataset_size} samples, fewer than one global batch B={B}")
     per_epoch = None if dataset_size is None else (dataset_size // B if tail == "drop" else dataset_size / B)
-    schedule = build_schedule(cfg.schedule, total, per_epoch)
+    schedule = build_schedule(cfg.schedule, horizon, per_epoch)
     if cfg.schedule.get("warmup_epochs") is not None:
-        check_warmup(schedule.warmup_steps, total, "schedule.warmup_epochs", cfg.schedule.warmup_epochs)
+        check_warmup(schedule.warmup_steps, horizon, "schedule.warmup_epochs", cfg.schedule.warmup_epochs, length)
     s, o = cfg.scaling, cfg.optim
     base_batch = None if s.rule == "none" else s.base_batch
     exponent = s.exponent if s.rule == "power" else None
@@ -109,17 +118,18 @@ def resolve_recipe(cfg, layout, dataset_size: int | None, tail: str) -> Recipe:
     )
 
 
-def render_recipe(recipe: Recipe) -> Table:
-    """A two-column table of the recipe, ending with the rate at a few milestones."""
-    r = recipe
-    table = Table(title="recipe", show_header=False)
-    table.add_column("quantity", style="bold")
-    table.add_column("value")
+def _epoch_note(r: Recipe, steps: int) -> str:
+    return f" (epoch {steps / r.steps_per_epoch:.3g})" if r.steps_per_epoch else ""
+
+
+def _rows(r: Recipe) -> list[tuple[str, str]]:
+    """(quantity, value) pairs that every recipe has, in the order they are printed."""
     per_epoch = "stream (no epochs)" if r.steps_per_epoch is None else f"{r.steps_per_epoch:g}"
     epochs = f" ({r.epochs:.3g} epochs)" if r.epochs else ""
     warm_epochs = f" ({r.warmup_steps / r.steps_per_epoch:.3g} epochs)" if r.steps_per_epoch else ""
     base = f"{r.base_lr:g}" + ("" if r.base_batch is None else f" at batch {r.base_batch}")
     rule = r.rule + (f", exponent {r.exponent:g}" if r.exponent is not None else "")
+    decays = ", ".join(f"{m}{_epoch_note(r, m)}" for m in r.schedule.milestones) or "-"
     rows = [
         ("layout", r.layout),
         ("global batch B", str(r.global_batch)),
@@ -133,8 +143,32 @@ def render_recipe(recipe: Recipe) -> Table:
         ("warmup steps", f"{r.warmup_steps}{warm_epochs}"),
         ("steps per epoch", per_epoch),
         ("total steps", f"{r.total_steps}{epochs}"),
+        ("decay points (step)", decays),
     ]
-    rows += [(f"lr at step {s}", f"{r.lr_at(s):.6g}") for s in r.milestones()]
-    for row in rows:
-        table.add_row(*row)
+    if r.schedule.total_steps != r.total_steps:
+        rows.append(("schedule horizon", f"{r.schedule.total_steps} steps (schedule.total_steps)"))
+    return rows
+
+
+def render_recipe(recipe: Recipe | dict[str, Recipe]) -> Table:
+    """A table of one recipe, ending with the rate at a few milestones; or of several
+    recipes side by side (e.g. {"rehearsal": ..., "real job": ...}), one column each."""
+    if isinstance(recipe, Recipe):
+        table = Table(title="recipe", show_header=False)
+        table.add_column("quantity", style="bold")
+        table.add_column("value")
+        rows = _rows(recipe) + [(f"lr at step {s}", f"{recipe.lr_at(s):.6g}") for s in recipe.milestones()]
+        for row in rows:
+            table.add_row(*row)
+        return table
+    table = Table(title="recipe")
+    table.add_column("quantity", style="bold")
+    for label in recipe:
+        table.add_column(label)
+    columns = [dict(_rows(r)) for r in recipe.values()]
+    names = list(dict.fromkeys(name for column in columns for name in column))
+    for name in names:
+        table.add_row(name, *(column.get(name, "-") for column in columns))
+    table.add_row("lr at", *("\n".join(f"step {s}: {r.lr_at(s):.6g}" for s in r.milestones()) for r in recipe.values()))
     return table
+

@@ -17,6 +17,10 @@ from 0.
      or as fractions of total_steps (Goyal et al. divide by 10 at epochs 30, 60, 80 of 90,
      from memory).
    f is `final_factor`: the factor reached at total_steps.
+
+total_steps is the schedule's horizon: `schedule.total_steps` when set, else
+`train.steps`. They differ when a replay runs a variant longer or shorter than
+the original run but keeps its schedule (the horizon stays the original length).
 """
 
 import math
@@ -111,11 +115,20 @@ def build_schedule(node, total_steps: int, steps_per_epoch: float | None) -> Sch
     )
 
 
+def horizon_of(node, train_steps: int) -> int:
+    """Steps the schedule spans: `schedule.total_steps` if set, else the run length."""
+    horizon = node.get("total_steps")
+    return train_steps if horizon is None else horizon
+
+
 def validate_schedule(node, total_steps: int) -> None:
-    """Check the `schedule` group before the run length in epochs is known."""
+    """Check the `schedule` group before the run length in epochs is known (`total_steps`: the horizon)."""
     name = node.get("name")
     if name not in SHAPES:
         raise ConfigError("schedule.name", f"must be one of {', '.join(SHAPES)}", name)
+    horizon = node.get("total_steps")
+    if horizon is not None:
+        _check(node, "total_steps", _whole(horizon) and horizon >= 1, "must be null (= train.steps) or a whole number >= 1")
     steps, epochs = node.get("warmup_steps"), node.get("warmup_epochs")
     if epochs is not None:
         if steps:
@@ -138,10 +151,12 @@ def validate_schedule(node, total_steps: int) -> None:
         _check_milestones(node.get("milestones"), total_steps)
 
 
-def check_warmup(warmup_steps: int, total_steps: int, key: str = "schedule.warmup_steps", value=None) -> None:
+def check_warmup(
+    warmup_steps: int, total_steps: int, key: str = "schedule.warmup_steps", value=None, length: str = "train.steps"
+) -> None:
     if warmup_steps > total_steps:
         shown = warmup_steps if value is None else f"{value} = {warmup_steps} steps"
-        raise ConfigError(key, f"warmup is longer than training (train.steps={total_steps})", shown)
+        raise ConfigError(key, f"warmup is longer than training ({length}={total_steps})", shown)
 
 
 def _check_milestones(values, total_steps: int) -> None:

@@ -9,9 +9,14 @@ How:
 1. Find the checkpoint (`replay.from`: a file, or a run directory, whose newest
    checkpoint taken before its first detector event is used) and the run
    directory it belongs to (a file's parent's parent), with its `config.yaml`.
-2. Rebuild the overrides of that config (config_overrides.py) and compose each
+2. Rebuild the overrides of that config (config/overrides.py; with the run's own
+   config directories, recorded in its .hydra/) and compose each
    variant as the original's overrides plus the variant's own, so group swaps
-   (`optim=lamb`) behave as on the command line. Check every variant before any
+   (`optim=lamb`) behave as on the command line. The schedule keeps the
+   original's horizon (`schedule.total_steps`, else its train.steps) when
+   `replay.steps` runs shorter or longer, so the "original" variant sees the
+   rates the run saw; a variant that sets any `schedule` key changes the
+   schedule on purpose and spans its own run length unless it sets the horizon. Check every variant before any
    trains: same workers, micro-batch and accumulation as the checkpoint.
 3. A variant that changes the optimizer or the sync layer cannot take their saved
    state as it is: it gets a start checkpoint in its own directory holding the
@@ -30,7 +35,7 @@ import torch
 from omegaconf import OmegaConf
 
 from scaledrill.config.keys import composition_error, refuse_unknown
-from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides
+from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides, search_dirs
 from scaledrill.errors import CheckpointError, ConfigError
 from scaledrill.layout import Layout
 from scaledrill.telemetry.store import read_events
@@ -77,14 +82,26 @@ def variant_overrides(node) -> dict[str, list[str]]:
     return out
 
 
+def _touches_schedule(overrides: list[str]) -> bool:
+    keys = (s.split("=")[0].lstrip("+~") for s in overrides)
+    return any(k == "schedule" or k.startswith("schedule.") for k in keys)
+
+
+def original_horizon(saved: dict) -> int:
+    """Steps the original run's schedule spans: its schedule.total_steps, else its train.steps."""
+    return saved.get("schedule", {}).get("total_steps") or saved["train"]["steps"]
+
+
 def compose_variants(saved: dict, where: str, ckpt: Path, steps: int, variants: dict) -> dict:
     """Step 2: name -> resolved run config, the original first."""
-    base = rebuild_overrides(saved, where)
+    base = rebuild_overrides(saved, where, search_dirs(Path(where).parent))
+    horizon = original_horizon(saved)
     out = {}
     with hydra_session():
         for name, extra in {"original": [], **variants}.items():
+            keep = [] if _touches_schedule(extra) else [f"++schedule.total_steps={horizon}"]
             try:
-                cfg = compose_run([*base, *extra, f"train.steps={steps}", f"resume={render_path(ckpt)}"])
+                cfg = compose_run([*base, *extra, *keep, f"train.steps={steps}", f"resume={render_path(ckpt)}"])
                 refuse_unknown(cfg)
             except ConfigError as err:
                 raise ConfigError(f"replay.variants.{name}", f"cannot compose: {err}", extra) from None

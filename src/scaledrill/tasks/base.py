@@ -1,4 +1,9 @@
-"""Build a task's model, data and loss from its config node through Hydra `_target_`s."""
+"""Build a task's model, data and loss from its config node through Hydra `_target_`s.
+
+A plain map-style torch Dataset is wrapped as the task's training data and a plain
+torch loss (module or function) as its Loss (adapters.py), so ordinary torch code
+plugs in without glue.
+"""
 
 from dataclasses import dataclass
 from typing import Any
@@ -6,8 +11,11 @@ from typing import Any
 import torch
 from hydra.errors import InstantiationException
 from hydra.utils import instantiate
+from omegaconf import DictConfig, OmegaConf
+from omegaconf.errors import MissingMandatoryValue
 
 from scaledrill.errors import ConfigError
+from scaledrill.tasks.adapters import TorchData, TorchLoss
 
 
 @dataclass
@@ -19,10 +27,14 @@ class Task:
 
 
 def _build(node, key: str):
+    if isinstance(node, DictConfig) and OmegaConf.is_missing(node, "_target_"):
+        raise ConfigError(f"{key}._target_", "is required: name your class, e.g. mypkg.MyNet (README: Your own model and data)")
     if node is None or "_target_" not in node:
         raise ConfigError(key, "needs a _target_ naming a class or function to build")
     try:
         return instantiate(node, _convert_="all")
+    except MissingMandatoryValue as err:
+        raise ConfigError(f"{key}._target_", f"a required value is missing: {err}") from None
     except InstantiationException as err:
         cause = err.__cause__ or err
         raise ConfigError(f"{key}._target_", f"could not import or build {node._target_!r}: {cause}") from None
@@ -36,11 +48,15 @@ def build_task(node) -> Task:
     if not isinstance(model, torch.nn.Module):
         raise ConfigError("task.model._target_", f"must build a torch.nn.Module, got {type(model).__name__}")
     data = _build(node.get("data"), "task.data")
+    if not hasattr(data, "train") and hasattr(data, "__getitem__") and hasattr(data, "__len__"):
+        data = TorchData(data)  # a plain map-style torch Dataset: the training set
     if not hasattr(data, "train"):
-        raise ConfigError("task.data._target_", "must build an object with a `train` dataset")
+        raise ConfigError("task.data._target_", "must build a map-style torch Dataset or an object with a `train` dataset")
     loss = _build(node.get("loss"), "task.loss")
+    if callable(loss) and not hasattr(loss, "count"):
+        loss = TorchLoss(loss)  # a plain torch loss: per-sample units
     if not callable(loss) or not hasattr(loss, "count"):
-        raise ConfigError("task.loss._target_", "must build a loss with __call__(output, batch) and count(batch)")
+        raise ConfigError("task.loss._target_", "must build a torch loss or a loss with __call__(output, batch) and count(batch)")
     return Task(name=str(node.get("name", "custom")), model=model, data=data, loss=loss)
 
 
