@@ -82,7 +82,7 @@ def test_build_from_the_default_config():
     kinds = [type(d) for d in build_detectors(cfg)]
     assert kinds == [NonFinite, LossSpike, GradExplosion, OverflowStorm, ScaleCollapse, InitialRise]
     spike = build_detectors(cfg)[1]
-    assert (spike.threshold, spike.ratio, spike.share, spike.window, spike.min_history) == (6.0, 2.0, 0.1, 50, 20)
+    assert (spike.threshold, spike.ratio, spike.share, spike.window, spike.min_history) == (6.0, 2.0, 0.2, 50, 20)
 
 
 def test_null_disables():
@@ -160,7 +160,7 @@ def test_no_alarm_near_convergence_but_the_z_score_alone_would_fire():
 
 def test_a_real_spike_near_convergence_still_fires():
     series = converged()
-    series[200]["loss"] = 0.5  # gives back 0.49/2.29 = 21% of the fall: past the 10% share
+    series[200]["loss"] = 0.6  # gives back 0.59/2.29 = 26% of the fall: past the 20% share
     assert [s for s, _ in run(LossSpike(), series)] == [200]
     small = converged()
     small[200]["loss"] = 0.1  # 16x the median, but only 4% of the fall
@@ -176,8 +176,10 @@ def test_ratio_floor():
 def test_initial_rise_fires_before_any_window_is_ready():
     series = [{"loss": 13.1}, {"loss": 12.9}, {"loss": 20.0}, {"loss": 27.0}, {"loss": 146.0}]
     fired = run(InitialRise(factor=2.0), series)
-    assert [s for s, _ in fired] == [3, 4]  # 27.0 > 2 × 13.1; 20.0 is not
-    assert "first loss 13.1" in fired[0][1]
+    assert [s for s, _ in fired] == [3, 4]  # 27.0 > 2 × 13.1, the median of the first three; 20.0 is not
+    assert "first losses' median 13.1" in fired[0][1]
+    lucky = [{"loss": 0.25}, {"loss": 3.3}, {"loss": 2.4}, {"loss": 2.7}, {"loss": 1.3}]  # a noisy task's low first batch
+    assert run(InitialRise(factor=2.0), lucky) == []
     resumed = InitialRise(factor=2.0)
-    resumed.load_state_dict(InitialRise(factor=2.0, initial=13.1).state_dict())
+    resumed.load_state_dict(InitialRise(factor=2.0, initial=[13.1, 12.9, 20.0]).state_dict())
     assert resumed.observe(9, {"loss": 26.3}) is not None

@@ -45,10 +45,10 @@ def test_two_variants_and_a_bitwise_original(tmp_path, small_run):
     assert out["departure_step"] == 9 and out["cluster_log"] == str(log)
     for v in out["variants"]:
         summary = json.loads((tmp_path / "replay" / v["run_dir"] / "summary.json").read_text())
-        assert summary["steps"] == 12 and summary["resumed_from_step"] == 4
-        assert summary["final_loss"] == v["final_loss"]
-    # Clipping to 0.01 under momentum 0.9 leaves the loss climbing every step (10 -> 43 by step 11, measured):
-    # past 3x the run's first loss, which the initial-loss rule calls a divergence.
+        assert summary["resumed_from_step"] == 4 and summary["final_loss"] == v["final_loss"]
+        assert summary["steps"] == 12 or (v["diverged"] and "rise" in summary["stop_reason"])  # a detector stops it early
+    # Clipping to 0.01 under momentum 0.9 leaves the loss climbing every step (10 -> 37 by step 10, measured):
+    # past 3x the median of the run's first three losses, which the initial-loss rule calls a divergence.
     assert [v["diverged"] for v in out["variants"]] == [False, False, True]
     original = json.loads((tmp_path / "replay" / "variant-original" / "summary.json").read_text())
     # The original continuation is the uninterrupted run, bit for bit.

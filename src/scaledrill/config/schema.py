@@ -83,6 +83,7 @@ class TaskConfig:
     model: Any = MISSING
     data: Any = MISSING
     loss: Any = MISSING
+    goal: Any = None  # when the task counts as trained: {metric, value, reached_when} (the ladder's default goal)
 
 
 @dataclass
@@ -149,7 +150,7 @@ class RunConfig:
     sync: Any = MISSING
     telemetry: Any = MISSING
     train: TrainConfig = field(default_factory=TrainConfig)
-    job: Any = None  # the real job (recipe and forecast compose it: `job=imagenet`, conf/job/)
+    job: Any = MISSING  # the real job this rehearses (`job=imagenet`, conf/job/)
     resume: Optional[str] = None  # path of a checkpoint to continue from
     debug: bool = False  # show Python tracebacks on errors
 

@@ -128,7 +128,7 @@ def validate_schedule(node, total_steps: int) -> None:
         raise ConfigError("schedule.name", f"must be one of {', '.join(SHAPES)}", name)
     horizon = node.get("total_steps")
     if horizon is not None:
-        _check(node, "total_steps", _whole(horizon) and horizon >= 1, "must be null (= train.steps) or a whole number >= 1")
+        _check(node, "total_steps", is_whole(horizon) and horizon >= 1, "must be null (= train.steps) or a whole number >= 1")
     steps, epochs = node.get("warmup_steps"), node.get("warmup_epochs")
     if epochs is not None:
         if steps:

@@ -19,7 +19,8 @@ its own counter of firings and never prints; the engine decides what to do
   sample), so ordinary noise counts as many sigmas and as many times the median
   (measured: 0.06 against a median of 0.006 on digits, a 10× "spike" that gives
   back 2% of the fall from 2.35); the share ties the alarm to the task's own scale.
-- InitialRise: the loss exceeds `factor` times the run's first loss. It needs no
+- InitialRise: the loss exceeds `factor` times the median of the run's first three
+  losses (one lucky first batch of a noisy task is not the start). It needs little
   history, so it watches the first `min_history` steps the window detectors cannot
   (a linear-rule run at full rate from step 0 blows up within a few steps), and it
   stays on after them: a loss three times its starting value is divergence on any task
@@ -37,8 +38,8 @@ its own counter of firings and never prints; the engine decides what to do
   gradients instead of lifting them out of fp16's underflow range: what overflows
   is the forward pass or the loss itself, and scaling cannot help.
 
-Tuning: the defaults (z > 6, 2× the median and 10% of the fall, over 50 steps, norm > 10× median,
-loss > 3× the first loss) are common practice
+Tuning: the defaults (z > 6, 2× the median and 20% of the fall, over 50 steps, norm > 10× median,
+loss > 3× the first losses' median) are common practice
 for catching real blow-ups while staying quiet on ordinary mini-batch noise; lower
 them to catch slower drifts at the price of false alarms.
 """
@@ -112,7 +113,7 @@ class _Trailing:
 class LossSpike(_Trailing):
     threshold: float = 6.0
     ratio: float = 2.0  # the loss must also exceed ratio × the trailing median (1 = no relative floor)
-    share: float = 0.1  # ...and rise above it by share × (first loss - median) (0 = no such floor)
+    share: float = 0.2  # ...and rise above it by share × (first loss - median) (0 = no such floor)
     first: float | None = None  # the first finite value seen
     rel_floor: float = 1e-3  # spread floor, × |median|: a flat loss must not turn rounding into a spike
 
@@ -179,29 +180,31 @@ class GradExplosion(_Trailing):
 class InitialRise:
     key: str = "loss"
     factor: float = 3.0
-    initial: float | None = None  # the first finite loss this detector saw
+    arm: int = 3  # the reference is the median of the first `arm` finite losses: one lucky first batch is not it
+    initial: list[float] = field(default_factory=list)
     fired: int = 0
 
     def observe(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
         if value is None or not math.isfinite(value):
             return None  # NonFinite's business
-        if self.initial is None:
-            self.initial = value
+        if len(self.initial) < self.arm:
+            self.initial.append(value)
             return None
-        if self.initial > 0 and value > self.factor * self.initial:
+        start = statistics.median(self.initial)
+        if start > 0 and value > self.factor * start:
             self.fired += 1
             return (
-                f"{self.key} rise at step {step}: {value:.6g} is {value / self.initial:.2f}x "
-                f"the first loss {self.initial:.6g} (limit {self.factor:g}x)"
+                f"{self.key} rise at step {step}: {value:.6g} is {value / start:.2f}x "
+                f"the first losses' median {start:.6g} (limit {self.factor:g}x)"
             )
         return None
 
     def state_dict(self) -> dict:
-        return {"initial": self.initial, "fired": self.fired}
+        return {"initial": list(self.initial), "fired": self.fired}
 
     def load_state_dict(self, state: dict) -> None:
-        self.initial, self.fired = state["initial"], state["fired"]
+        self.initial, self.fired = list(state["initial"]), state["fired"]
 
 
 @dataclass

@@ -13,14 +13,14 @@ class DetectConfig:
     nonfinite: bool = True  # fire on a NaN or infinite loss or gradient norm
     spike_z: Optional[float] = 6.0  # robust sigmas (MAD x 1.4826) above the trailing median; null = off
     spike_ratio: float = 2.0  # ...and also more than this many times that median (a floor for a nearly flat loss); 1 = no floor
-    spike_share: float = 0.1  # ...and rise above it by this share of the fall from the run's first loss to that median; 0 = no floor
+    spike_share: float = 0.2  # ...and rise above it by this share of the fall from the run's first loss to that median; 0 = no floor
     spike_window: int = 50  # trailing steps behind the median (loss spike and gradient explosion)
     min_history: int = 20  # steps seen before the spike and explosion checks start
     grad_factor: Optional[float] = 10.0  # gradient norm above this many times its trailing median; null = off
     skip_storm: Optional[int] = 10  # fire when this many steps are skipped for an overflowed gradient (loss scaling) ...; null = off
     skip_window: int = 50  # ... within this many steps
     scale_floor: Optional[float] = 1.0  # fire when the loss scale falls below this; null = off
-    initial_factor: Optional[float] = 3.0  # loss above this many times the run's first loss (from step 0); null = off
+    initial_factor: Optional[float] = 3.0  # loss above this many times the median of the first three losses; null = off
 
 
 @dataclass
