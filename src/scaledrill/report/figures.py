@@ -17,6 +17,9 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap, LogNorm, Normalize
 from matplotlib.figure import Figure
+from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
+
+from scaledrill.report.numbers import number
 
 INK, PAPER, GRID = "#23303b", "#fbf8f2", "#e4ddd0"
 SERIES = ("#1f7a78", "#d08c2a", "#b5473a", "#6d4c8f", "#6b8e3e", "#4a7fb5", "#8a6d52")
@@ -50,6 +53,39 @@ def _title(ax, title: str, xlabel: str, ylabel: str) -> None:
     ax.set_ylabel(ylabel, color=INK, fontsize=9)
 
 
+def flat(values) -> bool:
+    """True when a series carries no shape: at most one finite value, or all of them equal."""
+    finite = np.asarray(values, dtype=float)
+    finite = finite[np.isfinite(finite)]
+    return finite.size <= 1 or bool(np.ptp(finite) <= 1e-9 * max(np.abs(finite).max(), 1e-300))
+
+
+def _nice_log_ticks(low: float, high: float) -> list[float]:
+    """Ticks at 1, 2, 5 × 10^k inside [low, high]; when fewer than two fall there (a span
+    under a factor of about 2.5), three round values spread evenly on the log scale."""
+    ticks = [m * 10.0**k for k in range(math.floor(math.log10(low)) - 1, math.ceil(math.log10(high)) + 1)
+             for m in (1, 2, 5) if low <= m * 10.0**k <= high]  # fmt: skip
+    if len(ticks) > 7:
+        ticks = [t for t in ticks if f"{t:e}".startswith("1")] or ticks
+    if len(ticks) >= 2:
+        return ticks
+    return sorted({float(f"{t:.2g}") for t in np.geomspace(low, high, 4)[1:3]} | set(ticks))
+
+
+def readable_log(ax, which: str = "both") -> None:
+    """Plain-number labels on log axes, none on minor ticks, so no labels overlap
+    (matplotlib's default labels minor ticks as 3×10¹ when a span is short)."""
+    for name in ("x", "y") if which == "both" else (which,):
+        axis = ax.xaxis if name == "x" else ax.yaxis
+        if axis.get_scale() != "log":
+            continue
+        low, high = sorted(ax.get_xlim() if name == "x" else ax.get_ylim())
+        axis.set_major_locator(FixedLocator(_nice_log_ticks(low, high)))
+        axis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 2)))
+        axis.set_minor_locator(NullLocator())
+        axis.set_minor_formatter(NullFormatter())
+
+
 def _positive(values) -> bool:
     finite = np.asarray(values, dtype=float)
     finite = finite[np.isfinite(finite)]
@@ -64,12 +100,17 @@ def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool
     """
     fig, (ax,) = _figure()
     for i, (label, x, y) in enumerate(series):
-        style = "o-" if len(x) <= 12 else "-"
-        ax.plot(x, y, style, color=SERIES[i % len(SERIES)], label=label, linewidth=1.4, markersize=3)
+        colour = SERIES[i % len(SERIES)]
+        if len(x) <= 12:  # a few measured points: draw the points, the joining line only as a faint guide
+            ax.plot(x, y, "-", color=colour, linewidth=0.8, alpha=0.35)
+            ax.plot(x, y, "o", color=colour, label=label, markersize=5)
+        else:
+            ax.plot(x, y, "-", color=colour, label=label, linewidth=1.4)
     for j, (x, label) in enumerate(marks):
         ax.axvline(x, color=INK, linestyle=("--", ":")[j % 2], linewidth=1.1, label=label)
     if logy and all(_positive(y) for _, _, y in series):
         ax.set_yscale("log")
+        readable_log(ax, "y")
     _title(ax, title, xlabel, ylabel)
     if len(series) + len(marks) > 1:
         ax.legend(fontsize=8, frameon=False)
@@ -121,11 +162,12 @@ def scaling(batches, steps, missed, fit, perfect_from) -> str:
             ax.axvline(b_crit, color=PLUM, linestyle=":", label=f"B_crit ≈ {b_crit:.3g}")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    readable_log(ax)
     for b in missed:
         ax.axvline(b, color=BRICK, linewidth=0.8, alpha=0.5)
         ax.annotate("missed", (b, 1), xycoords=("data", "axes fraction"), color=BRICK, fontsize=7,
                     ha="center", va="bottom")  # fmt: skip
-    _title(ax, "Steps to target vs global batch", "global batch B", "steps to target")
+    _title(ax, "Steps to target vs global batch", "global batch B (samples per step)", "steps to target (steps)")
     ax.legend(fontsize=8, frameon=False)
     return to_uri(fig)
 
@@ -154,7 +196,8 @@ def lr_windows(rows) -> str:
     ax.set_xticks(range(len(rows)), [str(r[0]) for r in rows])
     if all(lr > 0 for _, trials, _, _ in rows for lr, _ in trials):
         ax.set_yscale("log")
-    _title(ax, "Learning-rate window per rung", "global batch B", "learning rate")
+        readable_log(ax, "y")
+    _title(ax, "Learning-rate window per rung", "global batch B (samples per step)", "learning rate (per step)")
     ax.legend(fontsize=8, frameon=False)
     return to_uri(fig)
 
@@ -179,5 +222,6 @@ def forecast_bars(labels: list[str], panels, cheapest: int | None, fastest: int 
                             ha="center", va="bottom", fontsize=7, color=INK)  # fmt: skip
         ax.set_ylim(0, top * 1.3)
         ax.set_xticks(range(len(labels)), labels, fontsize=7)
-        _title(ax, title, "global batch B", unit)
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 3)))
+        _title(ax, title, "global batch B (samples)", unit)
     return to_uri(fig)
