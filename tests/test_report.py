@@ -284,3 +284,45 @@ def test_cli_writes_only_the_report(tmp_path):
                          capture_output=True, text=True)
     assert bad.returncode == 2 and "path: must be an existing directory" in bad.stderr
     assert not (tmp_path / "nowhere").exists()
+
+
+# ------------------------------------------------------------------ sweeps
+
+
+def make_multirun(top: Path, lrs=(0.05, 0.1, 0.4)) -> Path:
+    """Hydra's multirun layout: top/DATE/TIME/N/ with .hydra/overrides.yaml; the last lr diverges."""
+    base = top / "2026-01-01" / "10-00-00"
+    for n, lr in enumerate(lrs):
+        bad = n == len(lrs) - 1
+        run = make_run(base / str(n), steps=20, compression=False,
+                       summary_extra={"final_loss": float("nan") if bad else 0.5 / (n + 1), "diverged": bad,
+                                      "stop_reason": "loss spike at step 12: far above" if bad else None,
+                                      "steps": 12 if bad else 20})  # fmt: skip
+        (run / ".hydra").mkdir()
+        (run / ".hydra" / "overrides.yaml").write_text(f"- task=digits\n- optim.lr={lr}\n- train.progress=false\n")
+    (base / "multirun.yaml").write_text("hydra: {}\n")
+    return top
+
+
+def test_a_multirun_folder_is_compared_side_by_side(tmp_path):
+    text, page = render(make_multirun(tmp_path / "multirun"), tmp_path)
+    assert list(page.sections)[0] == "sweep"  # before the three run sections
+    sweep = page.sections["sweep"]
+    # only the key that differs between the runs is a column; task=digits is the same everywhere
+    assert "<th>optim.lr</th>" in text and "<th>task</th>" not in text
+    assert sweep["captions"] == ["The runs side by side (swept keys as columns; best and unstable marked)"]
+    # rows in run order 0, 1, 2: final losses 0.5, 0.25, NaN → the best is run 1, run 2 diverged
+    assert page.classes[:2] == ["pick", "bad"]  # (a plain row has no class)
+    assert '<tr class="pick"><td>2026-01-01/10-00-00/1</td>' in text and '<tr class="bad"><td>2026-01-01/10-00-00/2<' in text
+    assert "3 runs over optim.lr: best optim.lr=0.1 (final training loss 0.25); unstable: optim.lr=0.4." in text
+    assert [i["alt"] for i in pngs(sweep)] == ["Training loss of 3 runs against step, overlaid"]
+
+
+def test_several_run_folders_compare_on_the_config_keys_that_differ(tmp_path):
+    for name, lr in (("a", 0.1), ("b", 0.2)):
+        make_run(tmp_path / name, steps=10, compression=False)
+        (tmp_path / name / "config.yaml").write_text(f"optim:\n  lr: {lr}\n  name: sgd\ntrain:\n  seed: 0\n")
+    cfg = OmegaConf.create({"path": [str(tmp_path / "a"), str(tmp_path / "b")], "out": None, "debug": False})
+    report_verb(cfg, tmp_path)
+    text = (tmp_path / "report.html").read_text(encoding="utf-8")  # the common parent of the two
+    assert "2 runs over optim.lr: best" in text and "<th>optim.name</th>" not in text

@@ -60,6 +60,18 @@ def flat(values) -> bool:
     return finite.size <= 1 or bool(np.ptp(finite) <= 1e-9 * max(np.abs(finite).max(), 1e-300))
 
 
+def measurements(x, y) -> tuple[np.ndarray, np.ndarray]:
+    """The points where a held value changes: a quantity estimated now and then and
+    logged every step (the noise scale) is a few measurements, not a curve."""
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    keep = np.isfinite(y)
+    x, y = x[keep], y[keep]
+    if y.size == 0:
+        return x, y
+    new = np.concatenate(([True], y[1:] != y[:-1]))
+    return x[new], y[new]
+
+
 def _nice_log_ticks(low: float, high: float) -> list[float]:
     """Ticks at 1, 2, 5 × 10^k inside [low, high]; when fewer than two fall there (a span
     under a factor of about 2.5), three round values spread evenly on the log scale."""
@@ -92,7 +104,7 @@ def _positive(values) -> bool:
     return finite.size > 0 and bool(np.all(finite > 0))
 
 
-def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool = False, marks=()) -> str:
+def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool = False, marks=(), ylim=None) -> str:
     """Line plot of `series` = [(label, x, y)] with vertical `marks` = [(x, label)].
 
     A log y axis is used only if asked for and every value is positive, so a
@@ -108,9 +120,13 @@ def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool
             ax.plot(x, y, "-", color=colour, label=label, linewidth=1.4)
     for j, (x, label) in enumerate(marks):
         ax.axvline(x, color=INK, linestyle=("--", ":")[j % 2], linewidth=1.1, label=label)
+    if ylim is not None:  # a diverged series would flatten the others: it runs off the top instead
+        ax.set_ylim(*ylim)
     if logy and all(_positive(y) for _, _, y in series):
         ax.set_yscale("log")
         readable_log(ax, "y")
+    else:
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 3)))
     _title(ax, title, xlabel, ylabel)
     if len(series) + len(marks) > 1:
         ax.legend(fontsize=8, frameon=False)

@@ -173,7 +173,8 @@ def summary_block(sections: list[Section]) -> str:
     for s in sections:
         css = "info" if s.good is None else "good" if s.good else "poor"
         tag = f'<span class="tag {css}">{text(s.tag or s.kind)}</span>'
-        items.append(f'<li>{tag}<a href="#{s.id}">{text(s.title)}</a>: {text(s.summary or "see below.")}</li>')
+        where = f" ({s.source})" if s.source not in ("", ".") else ""
+        items.append(f'<li>{tag}<a href="#{s.id}">{text(s.title + where)}</a>: {text(s.summary or "see below.")}</li>')
     return f'<div class="summary" id="summary"><h2>Summary</h2><ol>{"".join(items)}</ol></div>'
 
 

@@ -28,6 +28,7 @@ RUN_PLOTS = (  # (title, y label with its unit, scalar names, log y)
     ("Bytes sent per worker per step", "bytes per worker per step", ("wire_bytes_per_worker",), False),
 )
 STEP_AXIS = "step (optimizer updates)"
+HELD = ("b_simple",)  # estimated every few steps and held in between: drawn as its measurements
 HEATMAPS = (("update_ratio", "update / weight norm"), ("trust_ratio", "trust ratio"))
 
 
@@ -73,6 +74,7 @@ def _store_blocks(store: Path) -> tuple[list[str], list[str]]:
         if all(fg.flat(y) for _, _, y in series):
             blocks.append(paragraph(flat_sentence(title, series), "note"))
             continue
+        series = [(n, *fg.measurements(x, y)) if n in HELD else (n, x, y) for n, x, y in series]
         alt = f"{title}: {', '.join(s[0] for s in series)} against step"
         blocks.append(figure(fg.lines(title, series, xlabel=STEP_AXIS, ylabel=ylabel, logy=logy), alt))
     for name, label in HEATMAPS:
