@@ -232,7 +232,7 @@ def forecast_verdict(rungs: list[dict], cheapest: int | None, fastest: int | Non
     def told(i: int) -> str:
         r = rungs[i]
         t, t0 = r.get("time_to_target_s"), base.get("time_to_target_s")
-        speed = f", {number(t0 / t)}× the speed of B={base['global_batch']}" if t and t0 else ""
+        speed = f", {number(t0 / t)}× the speed of B={base['global_batch']}" if t and t0 and r is not base else ""
         return f"B={r['global_batch']} on {r.get('devices')} devices: {duration(t)} to target, cost {number(r.get('cost'))}{speed}"
 
     if cheapest == fastest:
