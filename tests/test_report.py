@@ -326,3 +326,22 @@ def test_several_run_folders_compare_on_the_config_keys_that_differ(tmp_path):
     report_verb(cfg, tmp_path)
     text = (tmp_path / "report.html").read_text(encoding="utf-8")  # the common parent of the two
     assert "2 runs over optim.lr: best" in text and "<th>optim.name</th>" not in text
+
+
+def test_one_rung_jobs_are_gathered_into_one_ladder_but_two_recipes_are_not(tmp_path):
+    whole = json.loads((make_ladder(tmp_path / "whole") / "ladder.json").read_text())
+    jobs = tmp_path / "multirun" / "2026-01-01" / "10-00-00"
+    for n, rung in enumerate(whole["rungs"]):
+        (jobs / str(n) / ".hydra").mkdir(parents=True)
+        (jobs / str(n) / ".hydra" / "overrides.yaml").write_text(f"- optim=sgd\n- ladder.batches=[{rung['global_batch']}]\n")
+        (jobs / str(n) / "ladder.json").write_text(json.dumps(dict(whole, rungs=[rung], fit=None, search=None)))
+    text, page = render(tmp_path / "multirun", tmp_path)
+    assert list(page.sections) == ["ladder-2026-01-01-10-00-00"]  # the jobs' own one-rung sections are dropped
+    assert len(page.sections["ladder-2026-01-01-10-00-00"]["imgs"]) == 1  # steps vs batch with the fit
+    # the synthetic rungs follow S = 100(1 + 512/B) exactly, so the gathered fit finds B_crit = 512
+    assert "Gathered from 4 jobs. Critical batch ≈ 512 samples" in text
+
+    make_ladder(tmp_path / "two" / "sgd")
+    make_ladder(tmp_path / "two" / "lamb")  # the same batches with another optimizer: two ladders, not one
+    text, page = render(tmp_path / "two", tmp_path)
+    assert "Gathered" not in text and len(page.sections) == 2

@@ -19,7 +19,6 @@ Steps:
 """
 
 import math
-import statistics
 import time
 from pathlib import Path
 
@@ -28,7 +27,7 @@ from omegaconf import OmegaConf
 from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.io import write_json
-from scaledrill.ladder.fit import fit_tradeoff, regime
+from scaledrill.ladder.gather import ladder_payload
 from scaledrill.ladder.rungs import TRAIN_LOSS, Plan, Rung, Watch, rung_config
 from scaledrill.optim.scaling import scaled_lr
 from scaledrill.train.run import prepare_run_dir, run_verb
@@ -172,23 +171,6 @@ def _collected(job, cfg, rung: Rung, ladder_dir: Path) -> tuple[dict, dict | Non
         return out, None
 
 
-def _finite(value):
-    return value if value is not None and math.isfinite(value) else None
-
-
 def ladder_json(plan: Plan, results: list[dict], searches: dict | None) -> dict:
-    """The ladder.json payload: rungs by batch, the fit over rungs that reached the target."""
-    rungs = sorted(results, key=lambda r: r["global_batch"])
-    hit = [r for r in rungs if r["steps_to_target"] and not r["diverged"] and not r.get("error")]
-    fit = fit_tradeoff([r["global_batch"] for r in hit], [r["steps_to_target"] for r in hit]) if len(hit) >= 2 else None
-    for r in rungs:
-        r["regime"] = regime(r["global_batch"], fit) if fit and not r.get("error") else None
-    noise = [r["noise_scale"] for r in rungs if r.get("noise_scale") is not None]
-    return {
-        "mode": plan.mode,
-        "target": plan.target.to_json(),
-        "rungs": rungs,
-        "fit": None if fit is None else {k: _finite(getattr(fit, k)) for k in ("s_min", "e_min", "b_noise", "b_crit", "residual")},
-        "noise_scale_measured": statistics.median(noise) if noise else None,
-        "search": None if searches is None else {str(b): searches[b] for b in sorted(searches)},
-    }
+    """The ladder.json payload (gather.py: also for rungs trained as separate jobs)."""
+    return ladder_payload(plan.mode, plan.target.to_json(), results, searches)

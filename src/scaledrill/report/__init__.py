@@ -11,7 +11,8 @@ How:
    ladder's own rung runs are not listed again).
 2. Build one section per result file, in that order within a directory; when
    two or more run directories are found (a Hydra multirun folder, or several
-   run folders given as `path=[A,B,…]`), add a sweep section comparing them.
+   run folders given as `path=[A,B,…]`), add a sweep section comparing them;
+   when several ladders are parts of one (one job per rung), add the gathered ladder.
 3. Write the page (default PATH/report.html; for several paths, their common
    parent) and print its path; sections appear in the reader's question order.
 """
@@ -81,10 +82,17 @@ def _root(cfg) -> tuple[Path, list[tuple[str, Path]]]:
 def build_sections(root: Path, results: list[tuple[str, Path]], debug: bool) -> list[Section]:
     """Step 2: one section per result, and a sweep section over the runs when there are several."""
     sections = [_section(name, directory, root, debug) for name, directory in results]
+    from scaledrill.report.sweep import gathered_ladder, sweep_section
+
+    def where(d: Path) -> str:
+        return str(d.resolve().relative_to(root.resolve())) if d.resolve() != root.resolve() else "."
+
     runs = [directory for name, directory in results if name == "summary.json"]
     if len(runs) >= 2:
-        from scaledrill.report.sweep import sweep_section
-
-        sources = [str(d.resolve().relative_to(root.resolve())) if d.resolve() != root.resolve() else "." for d in runs]
-        sections.append(sweep_section(runs, sources))
+        sections.append(sweep_section(runs, [where(d) for d in runs]))
+    ladders = [directory for name, directory in results if name == "ladder.json"]
+    if len(ladders) >= 2:
+        whole = gathered_ladder(ladders, [where(d) for d in ladders])
+        if whole is not None:  # the jobs' own sections would only repeat its rungs one by one
+            sections = [s for s in sections if s.kind != "ladder"] + [whole]
     return sections

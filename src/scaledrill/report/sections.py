@@ -184,6 +184,11 @@ def ladder_section(directory: Path, source: str) -> Section:
     if doc is None:
         section.blocks.append(absent([problem]))
         return section
+    return ladder_blocks(section, doc)
+
+
+def ladder_blocks(section: Section, doc: dict) -> Section:
+    """The ladder section's contents from a ladder.json payload (read, or gathered from jobs)."""
     rungs, fit, search = doc.get("rungs", []), doc.get("fit"), doc.get("search")
     section.good, section.tag, section.summary = ladder_verdict(doc)
     section.blocks.append(paragraph(section.summary))
@@ -199,7 +204,10 @@ def ladder_section(directory: Path, source: str) -> Section:
                                     [(FIT_NAMES.get(k, k), v) for k, v in fit.items()]))  # fmt: skip
     reached = sorted((r["global_batch"], r["steps_to_target"]) for r in rungs if r.get("steps_to_target"))
     missed = [r["global_batch"] for r in rungs if not r.get("steps_to_target")]
-    if reached:
+    if len(reached) == 1:
+        section.blocks.append(paragraph(f"One rung reached the target (B={reached[0][0]} in {reached[0][1]} steps): "
+                                        "no curve to draw until a second one does.", "note"))  # fmt: skip
+    elif reached:
         curve = tuple(float(fit.get(k, "nan")) for k in ("s_min", "e_min", "b_crit")) if fit else None  # "Infinity" too
         uri = fg.scaling([b for b, _ in reached], [s for _, s in reached], missed, curve, reached[0])
         section.blocks.append(figure(uri, "Steps to target against global batch, log-log, with the perfect-scaling "

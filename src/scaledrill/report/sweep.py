@@ -19,12 +19,14 @@ How:
 """
 
 import math
+import os
 from pathlib import Path
 
 import numpy as np
 
 from omegaconf import OmegaConf
 
+from scaledrill.ladder.gather import gather
 from scaledrill.report import figures as fg
 from scaledrill.report.html import Section, absent, figure, paragraph, table
 from scaledrill.report.numbers import duration, number
@@ -138,3 +140,24 @@ def _sentence(keys, labels, summaries, best, unstable) -> str:
     broke = [labels[i] for i, bad in enumerate(unstable) if bad]
     tail = f"; unstable: {'; '.join(broke)}" if broke else "; none diverged"
     return f"{head}: best {labels[best]} (final training loss {number(summaries[best]['final_loss'])}){tail}."
+
+
+def gathered_ladder(directories: list[Path], sources: list[str]) -> Section | None:
+    """One ladder section over ladders trained as separate jobs (one `-m` job per rung), or
+    None when they are not parts of one ladder: the same mode and target, no batch twice, and
+    (when Hydra recorded them) the same overrides apart from the batches."""
+    from scaledrill.report.sections import ladder_blocks
+
+    docs = [load_json(d / "ladder.json")[0] for d in directories]
+    if any(d is None for d in docs) or len({(d.get("mode"), str(d.get("target"))) for d in docs}) != 1:
+        return None
+    batches = [r["global_batch"] for d in docs for r in d.get("rungs", [])]
+    overrides = [_overrides(d) for d in directories]
+    rest = [{k: v for k, v in o.items() if k not in ("ladder.batches", "ladder.rungs")} for o in overrides if o]
+    if len(batches) != len(set(batches)) or any(r != rest[0] for r in rest):
+        return None
+    common = str(Path(os.path.commonpath(sources))) if all(s != "." for s in sources) else "."
+    section = Section("ladder", f"Batch-size ladder gathered from {len(docs)} jobs", common)
+    section = ladder_blocks(section, gather(docs))
+    section.summary = f"Gathered from {len(docs)} jobs. {section.summary}"
+    return section
