@@ -345,3 +345,18 @@ def test_one_rung_jobs_are_gathered_into_one_ladder_but_two_recipes_are_not(tmp_
     make_ladder(tmp_path / "two" / "lamb")  # the same batches with another optimizer: two ladders, not one
     text, page = render(tmp_path / "two", tmp_path)
     assert "Gathered" not in text and len(page.sections) == 2
+
+
+def test_cli_reports_several_run_folders_side_by_side(tmp_path):
+    import subprocess
+    import sys
+
+    for name, lr in (("lr 0.1", 0.1), ("lr-0.2", 0.2)):  # a space in a path survives the list override
+        make_run(tmp_path / name, steps=10, compression=False)
+        (tmp_path / name / "config.yaml").write_text(f"optim:\n  lr: {lr}\n")
+    done = subprocess.run([sys.executable, "-m", "scaledrill.cli", "report", str(tmp_path / "lr 0.1"),
+                           str(tmp_path / "lr-0.2")], cwd=tmp_path, capture_output=True, text=True)  # fmt: skip
+    assert done.returncode == 0, done.stderr
+    assert done.stdout.strip() == str(tmp_path / "report.html")
+    text = (tmp_path / "report.html").read_text(encoding="utf-8")
+    assert "Sweep of 2 runs" in text and "<th>optim.lr</th>" in text
