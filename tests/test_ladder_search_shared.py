@@ -19,9 +19,11 @@ def test_two_processes_finish_one_study_without_losing_or_repeating_a_trial(tmp_
     shared = [*QUAD, "ladder.search.enabled=true", f"ladder.search.trials={TRIALS}", "ladder.max_steps=80",
               f"ladder.search.storage={journal}", "ladder.search.study=shared"]  # fmt: skip
     env = dict(os.environ, OMP_NUM_THREADS="1")
-    procs = [subprocess.Popen([*SCALEDRILL, "ladder", *shared, f"hydra.run.dir={tmp_path / name}"], cwd=ROOT, env=env,
-                              stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)  # fmt: skip
-             for name in ("a", "b")]
+    procs = [
+        subprocess.Popen([*SCALEDRILL, "ladder", *shared, f"hydra.run.dir={tmp_path / name}"], cwd=ROOT, env=env,
+                         stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
+        for name in ("a", "b")
+    ]
     for p in procs:
         out, _ = p.communicate(timeout=300)
         assert p.returncode == 0, out

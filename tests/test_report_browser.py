@@ -65,7 +65,7 @@ PROBE = """<script>
 def chromium(*args: str) -> str:
     done = subprocess.run([CHROMIUM, "--headless", "--no-sandbox", "--disable-gpu", "--hide-scrollbars",
                            f"--window-size={WIDTH},4000", "--virtual-time-budget=10000", *args],
-                          capture_output=True, text=True, timeout=120)  # fmt: skip
+                          capture_output=True, text=True, timeout=120, check=False)  # fmt: skip
     assert done.returncode == 0, done.stderr[-2000:]
     return done.stdout
 
@@ -75,7 +75,7 @@ def probe(page: Path, shot: Path | None = None) -> dict:
     copy = page.with_name(page.stem + ".probed.html")
     copy.write_text(page.read_text(encoding="utf-8").replace("<head>", "<head>" + PROBE, 1), encoding="utf-8")
     dom = chromium("--dump-dom", copy.as_uri())
-    found = re.search(r'<pre id="probe">(.*?)</pre>', dom, re.S)
+    found = re.search(r'<pre id="probe">(.*?)</pre>', dom, re.DOTALL)
     assert found, f"the probe never ran (page did not load?):\n{dom[:500]}"
     if shot is not None:
         chromium(f"--screenshot={shot}", page.as_uri())

@@ -23,7 +23,6 @@ import os
 from pathlib import Path
 
 import numpy as np
-
 from omegaconf import OmegaConf
 
 from scaledrill.ladder.gather import gather
@@ -117,8 +116,8 @@ def sweep_section(directories: list[Path], sources: list[str]) -> Section:
         if len(calm) < len(curves):
             section.blocks.append(paragraph("The axis spans the runs that stayed stable; the unstable ones run off it.",
                                             "note"))  # fmt: skip
-    section.blocks.append(absent([] if keys else ["a setting that differs between the runs (no overrides or "
-                                                  "config.yaml differ)"]))  # fmt: skip
+    no_keys = "a setting that differs between the runs (no overrides or config.yaml differ)"
+    section.blocks.append(absent([] if keys else [no_keys]))
     return section
 
 
