@@ -17,7 +17,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap, LogNorm, Normalize
 from matplotlib.figure import Figure
-from matplotlib.ticker import FixedLocator, FuncFormatter, NullFormatter, NullLocator
+from matplotlib.ticker import FixedLocator, FuncFormatter, MaxNLocator, NullFormatter, NullLocator
 
 from scaledrill.report.numbers import number
 
@@ -73,15 +73,15 @@ def measurements(x, y) -> tuple[np.ndarray, np.ndarray]:
 
 
 def _nice_log_ticks(low: float, high: float) -> list[float]:
-    """Ticks at 1, 2, 5 × 10^k inside [low, high]; when fewer than two fall there (a span
-    under a factor of about 2.5), three round values spread evenly on the log scale."""
+    """Ticks at 1, 2, 5 × 10^k inside [low, high]; when fewer than three fall there (a span
+    under a factor of about five), round evenly spaced values, as on a linear axis."""
     ticks = [m * 10.0**k for k in range(math.floor(math.log10(low)) - 1, math.ceil(math.log10(high)) + 1)
              for m in (1, 2, 5) if low <= m * 10.0**k <= high]  # fmt: skip
     if len(ticks) > 7:
         ticks = [t for t in ticks if f"{t:e}".startswith("1")] or ticks
-    if len(ticks) >= 2:
+    if len(ticks) >= 3:
         return ticks
-    return sorted({float(f"{t:.2g}") for t in np.geomspace(low, high, 4)[1:3]} | set(ticks))
+    return [float(t) for t in MaxNLocator(nbins=4).tick_values(low, high) if low <= t <= high and t > 0]
 
 
 def readable_log(ax, which: str = "both") -> None:
@@ -152,8 +152,10 @@ def heatmap(title: str, steps, layers: list[str], matrix, label: str) -> str:
                       extent=(steps[0] - half, steps[-1] + half, len(layers) - 0.5, -0.5))  # fmt: skip
     every = max(1, math.ceil(len(layers) / 24))
     ax.set_yticks(range(0, len(layers), every), [n[-28:] for n in layers[::every]], fontsize=7)
-    fig.colorbar(image, ax=ax, label=label, shrink=0.9)
-    _title(ax, title, "step", "")
+    bar = fig.colorbar(image, ax=ax, label=label, shrink=0.9)
+    if wide:
+        readable_log(bar.ax, "y")
+    _title(ax, title, "step (optimizer updates)", "")
     return to_uri(fig)
 
 

@@ -82,6 +82,13 @@ def _store_blocks(store: Path) -> tuple[list[str], list[str]]:
         if not layers:
             missing.append(f"per-layer {name}")
             continue
+        if fg.flat(matrix):
+            value = np.asarray(matrix, dtype=float)
+            value = value[np.isfinite(value)]
+            shown = number(value[0]) if value.size else "never finite"
+            blocks.append(paragraph(f"Per-layer {label}: {shown} in every one of {len(layers)} layers at every one of "
+                                    f"{len(steps)} logged steps (no figure: nothing changes).", "note"))  # fmt: skip
+            continue
         alt = f"Heatmap of per-layer {label} ({len(layers)} layers × {len(steps)} steps)"
         blocks.append(figure(fg.heatmap(f"Per-layer {label}", steps, layers, matrix, label), alt))
     events = read_events(store)
