@@ -23,6 +23,7 @@ demo: $(STAMP)
 	$(BIN)/python scripts/demo.py
 
 test: $(TSTAMP)
+	scripts/ensure-chromium
 	$(BIN)/python -m pytest
 
 bench: $(STAMP)

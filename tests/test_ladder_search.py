@@ -78,7 +78,8 @@ def test_ladder_json_holds_the_search_per_rung(tmp_path):
 
 @pytest.mark.parametrize(
     "key, value",
-    [("pruner", "median"), ("hi", 0.01), ("trials", 0), ("reduction", 1), ("warmup_max", -1)],
+    [("pruner", "median"), ("hi", 0.01), ("trials", 0), ("reduction", 1), ("warmup_max", -1),
+     ("storage", "/no/such/dir/search.journal"), ("study", "' '")],
 )
 def test_bad_search_settings_name_the_key(key, value):
     cfg = make_config(*QUAD, f"ladder.search.{key}={value}", name="ladder")

@@ -91,7 +91,13 @@ def main(argv: list[str] | None = None) -> None:
         print(f"scaledrill: unknown verb {verb!r}\n\n{usage()}", file=sys.stderr)
         raise SystemExit(2)
     if verb == "report" and rest and "=" not in rest[0] and not rest[0].startswith("-"):
-        rest = [f"path={rest[0]}", *rest[1:]]  # `scaledrill report PATH`
+        paths = [a for a in rest if "=" not in a and not a.startswith("-")]
+        rest = [a for a in rest if a not in paths]
+        if len(paths) == 1:  # `scaledrill report PATH`
+            rest.insert(0, f"path={paths[0]}")
+        else:  # `scaledrill report RUN1 RUN2 …`: the runs side by side
+            quoted = ",".join("'" + p.replace("\\", "\\\\").replace("'", "\\'") + "'" for p in paths)
+            rest.insert(0, f"path=[{quoted}]")
     if verb == "run":
         _claim_before_hydra(rest)
     sys.argv = [f"scaledrill {verb}", *rest]

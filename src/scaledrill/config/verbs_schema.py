@@ -40,6 +40,8 @@ class SearchConfig:
     warmup_max: int = 0  # > 0: also search warmup steps in [0, warmup_max]
     explode: Optional[float] = 10.0  # a trial whose training loss exceeds this many times its first diverged; null = off
     seed: int = 0  # seed of the sampler: the same seed gives the same trials
+    storage: Optional[str] = None  # where the trials live: null = in memory | a journal file path | a database URL
+    study: str = "ladder"  # study name in the storage (one study per rung: NAME-B<batch>); processes sharing both share the search
 
 
 @dataclass
@@ -148,6 +150,6 @@ class ForecastRoot:
 
 @dataclass
 class ReportRoot:
-    path: str = MISSING  # a run, check, replay, ladder or forecast directory, or one holding several
+    path: Any = MISSING  # a run, check, replay, ladder or forecast directory, one holding several, or a list of them
     out: Optional[str] = None  # null = PATH/report.html
     debug: bool = False  # show Python tracebacks on errors

@@ -19,7 +19,6 @@ Steps:
 """
 
 import math
-import statistics
 import time
 from pathlib import Path
 
@@ -28,7 +27,7 @@ from omegaconf import OmegaConf
 from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.io import write_json
-from scaledrill.ladder.fit import fit_tradeoff, regime
+from scaledrill.ladder.gather import agreement, ladder_payload  # noqa: F401  (agreement: part of this module's interface)
 from scaledrill.ladder.rungs import TRAIN_LOSS, Plan, Rung, Watch, rung_config
 from scaledrill.layout import Layout
 from scaledrill.optim.scaling import scaled_lr
@@ -173,44 +172,7 @@ def _collected(job, cfg, rung: Rung, ladder_dir: Path) -> tuple[dict, dict | Non
         return out, None
 
 
-def _finite(value):
-    return value if value is not None and math.isfinite(value) else None
-
-
-DISAGREE = 2.0  # B_crit and the measured noise scale further apart than this factor are flagged (common practice)
-
-
-def agreement(b_crit: float | None, noise: float | None) -> dict | None:
-    """How far the fitted B_crit and the measured noise scale are apart, and whether that is worth a flag.
-
-    McCandlish et al. 2018 ("An Empirical Model of Large-Batch Training") find the
-    simple noise scale predicts the critical batch roughly, not exactly: it grows as
-    training proceeds, and B_crit here comes from a fit over few rungs.
-    """
-    if not b_crit or not noise:
-        return None
-    ratio = max(b_crit, noise) / min(b_crit, noise)
-    return {"ratio": ratio, "flagged": ratio > DISAGREE}
-
-
 def ladder_json(plan: Plan, results: list[dict], searches: dict | None) -> dict:
-    """The ladder.json payload: rungs by batch, the fit over rungs that reached the target."""
-    rungs = sorted(results, key=lambda r: r["global_batch"])
-    hit = [r for r in rungs if r["steps_to_target"] and not r["diverged"] and not r.get("error")]
-    fit = fit_tradeoff([r["global_batch"] for r in hit], [r["steps_to_target"] for r in hit]) if len(hit) >= 2 else None
+    """The ladder.json payload (gather.py: also for rungs trained as separate jobs)."""
     limits = {rung.global_batch: rung.limit for rung in plan.rungs}
-    for r in rungs:
-        r["regime"] = regime(r["global_batch"], fit) if fit and r in hit else None  # a missed target has no regime
-        r["step_limit"] = limits.get(r["global_batch"])
-    noise = [r["noise_scale"] for r in rungs if r.get("noise_scale") is not None]
-    measured = statistics.median(noise) if noise else None
-    return {
-        "grow": plan.grow,
-        "goal": plan.goal.to_json(),
-        "goal_source": plan.goal_source,
-        "rungs": rungs,
-        "fit": None if fit is None else {k: _finite(getattr(fit, k)) for k in ("s_min", "e_min", "b_noise", "b_crit", "residual")},
-        "noise_scale_measured": measured,
-        "agreement": agreement(None if fit is None else _finite(fit.b_crit), measured),
-        "search": None if searches is None else {str(b): searches[b] for b in sorted(searches)},
-    }
+    return ladder_payload(plan.grow, plan.goal.to_json(), plan.goal_source, results, searches, limits)

@@ -19,13 +19,31 @@ Steps:
 4. the window spans the rates that reached the target; the best rate reached it
    in the fewest steps (without a hit: the best final metric).
 
+Beyond one process: the trials live in Optuna's own storage (`ladder.search.storage`:
+null keeps them in memory; a file path is a journal file, `JournalFileBackend`, on
+a disk every process can reach; a URL such as sqlite:///… or postgresql://… a
+database). Every `scaledrill ladder` pointed at the same storage and study name
+(`ladder.search.study`, one study per rung: NAME-B<batch>) draws its trials from
+the one study, and the pruner compares against every process's trials. Each trial
+keeps its record (reached, diverged, steps, metric, which process) as a user
+attribute, so any process can rebuild the whole search. The trial count is the
+study's: a process stops when the study holds `trials` trials; two processes that
+start a trial at the same moment can overshoot it by one each. A shared search is
+not reproducible trial for trial (each process seeds its sampler with seed + its
+process id, so two processes never draw the same rates).
+
 References: Jamieson & Talwalkar 2016 (successive halving); Li et al. 2018 (Hyperband).
 """
 
 import math
+import os
+import socket
 from dataclasses import asdict, dataclass, field
+from pathlib import Path
 
 import optuna
+from optuna.storages import JournalStorage
+from optuna.storages.journal import JournalFileBackend
 
 from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError, is_number, is_whole
@@ -43,6 +61,7 @@ class Trial:
     steps: int = 0
     metric: float | None = None
     warmup: int | None = None
+    worker: str | None = None  # host:pid of the process that ran it (a shared search has several)
 
 
 @dataclass
@@ -89,6 +108,8 @@ class SearchSettings:
     warmup_max: int
     explode: float | None
     seed: int
+    storage: str | None = None
+    study: str = "ladder"
 
     @classmethod
     def from_config(cls, node, check_every: int) -> "SearchSettings":
@@ -114,11 +135,27 @@ class SearchSettings:
         seed = node.seed
         if not is_whole(seed):
             raise ConfigError("ladder.search.seed", "must be a whole number", seed)
+        storage = node.get("storage")
+        if storage is not None and not (isinstance(storage, str) and storage):
+            raise ConfigError("ladder.search.storage", "must be null, a journal file path or a database URL", storage)
+        if storage and "://" not in storage and not Path(storage).expanduser().parent.is_dir():
+            raise ConfigError("ladder.search.storage", "is a journal file whose directory must exist "
+                              "(on a disk every process of the search can reach)", storage)  # fmt: skip
+        study = node.get("study", "ladder")
+        if not isinstance(study, str) or not study.strip():
+            raise ConfigError("ladder.search.study", "must be a non-empty name", study)
         return cls(
             trials=positive("trials", whole=True), pruner=node.pruner, reduction=reduction,
             min_steps=positive("min_steps", whole=True, allow_none=True) or check_every, lo=float(lo), hi=float(hi),
             warmup_max=warmup, explode=positive("explode", allow_none=True), seed=seed,
+            storage=storage, study=study.strip(),
         )
+
+    def open_storage(self):
+        """None (Optuna keeps the study in memory), a database URL as given, or a journal file."""
+        if self.storage is None or "://" in self.storage:
+            return self.storage
+        return JournalStorage(JournalFileBackend(str(Path(self.storage).expanduser())))
 
     def pruner_for(self, steps: int) -> optuna.pruners.BasePruner:
         if self.pruner == "halving":
@@ -136,8 +173,7 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
     def objective(trial: optuna.Trial) -> float:
         rate = trial.suggest_float("lr", lr * settings.lo, lr * settings.hi, log=True)
         warmup = trial.suggest_int("warmup", 0, min(settings.warmup_max, rung.steps)) if settings.warmup_max else None
-        record = Trial(lr=rate, warmup=warmup)
-        result.trials.append(record)
+        record = Trial(lr=rate, warmup=warmup, worker=f"{socket.gethostname()}:{os.getpid()}")
 
         def report(step: int, value: float) -> bool:
             trial.report(value, step)
@@ -149,15 +185,34 @@ def search_lr(cfg, plan: Plan, rung: Rung, lr: float, settings: SearchSettings |
         record.reached = watch.reached_step is not None
         record.diverged = bool(watch.diverged or summary["diverged"])
         record.pruned = watch.stopped_by_report and not record.diverged
+        trial.set_user_attr("record", asdict(record))
         if record.diverged or record.pruned:
             raise optuna.TrialPruned()
         return watch.metric
 
     optuna.logging.set_verbosity(optuna.logging.WARNING)
+    shared = settings.storage is not None
     study = optuna.create_study(
+        storage=settings.open_storage(),
+        study_name=f"{settings.study}-B{rung.global_batch}",
+        load_if_exists=True,
         direction="minimize" if plan.goal.reached_when == "below" else "maximize",
-        sampler=optuna.samplers.TPESampler(seed=settings.seed),
+        sampler=optuna.samplers.TPESampler(seed=settings.seed + (os.getpid() if shared else 0)),
         pruner=settings.pruner_for(rung.steps),
     )
-    study.optimize(objective, n_trials=settings.trials, catch=())
+    if _started(study) < settings.trials:  # a study another process already finished gets no more trials
+        stop = optuna.study.MaxTrialsCallback(settings.trials, states=None)  # counts running trials of every process
+        study.optimize(objective, n_trials=settings.trials, catch=(), callbacks=[stop])
+    result.trials = [Trial(**t.user_attrs["record"]) for t in _done(study)]
     return result
+
+
+def _done(study: optuna.Study) -> list:
+    """The study's finished trials with their records, in trial order (every process's)."""
+    states = (optuna.trial.TrialState.COMPLETE, optuna.trial.TrialState.PRUNED)
+    return sorted((t for t in study.get_trials(deepcopy=False, states=states) if "record" in t.user_attrs),
+                  key=lambda t: t.number)  # fmt: skip
+
+
+def _started(study: optuna.Study) -> int:
+    return len(study.get_trials(deepcopy=False))

@@ -17,6 +17,9 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap, LogNorm, Normalize
 from matplotlib.figure import Figure
+from matplotlib.ticker import FixedLocator, FuncFormatter, MaxNLocator, NullFormatter, NullLocator
+
+from scaledrill.report.numbers import number
 
 INK, PAPER, GRID = "#23303b", "#fbf8f2", "#e4ddd0"
 SERIES = ("#1f7a78", "#d08c2a", "#b5473a", "#6d4c8f", "#6b8e3e", "#4a7fb5", "#8a6d52")
@@ -50,6 +53,51 @@ def _title(ax, title: str, xlabel: str, ylabel: str) -> None:
     ax.set_ylabel(ylabel, color=INK, fontsize=9)
 
 
+def flat(values) -> bool:
+    """True when a series carries no shape: at most one finite value, or all of them equal."""
+    finite = np.asarray(values, dtype=float)
+    finite = finite[np.isfinite(finite)]
+    return finite.size <= 1 or bool(np.ptp(finite) <= 1e-9 * max(np.abs(finite).max(), 1e-300))
+
+
+def measurements(x, y) -> tuple[np.ndarray, np.ndarray]:
+    """The points where a held value changes: a quantity estimated now and then and
+    logged every step (the noise scale) is a few measurements, not a curve."""
+    x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+    keep = np.isfinite(y)
+    x, y = x[keep], y[keep]
+    if y.size == 0:
+        return x, y
+    new = np.concatenate(([True], y[1:] != y[:-1]))
+    return x[new], y[new]
+
+
+def _nice_log_ticks(low: float, high: float) -> list[float]:
+    """Ticks at 1, 2, 5 × 10^k inside [low, high]; when fewer than three fall there (a span
+    under a factor of about five), round evenly spaced values, as on a linear axis."""
+    ticks = [m * 10.0**k for k in range(math.floor(math.log10(low)) - 1, math.ceil(math.log10(high)) + 1)
+             for m in (1, 2, 5) if low <= m * 10.0**k <= high]  # fmt: skip
+    if len(ticks) > 7:
+        ticks = [t for t in ticks if f"{t:e}".startswith("1")] or ticks
+    if len(ticks) >= 3:
+        return ticks
+    return [float(t) for t in MaxNLocator(nbins=4).tick_values(low, high) if low <= t <= high and t > 0]
+
+
+def readable_log(ax, which: str = "both") -> None:
+    """Plain-number labels on log axes, none on minor ticks, so no labels overlap
+    (matplotlib's default labels minor ticks as 3×10¹ when a span is short)."""
+    for name in ("x", "y") if which == "both" else (which,):
+        axis = ax.xaxis if name == "x" else ax.yaxis
+        if axis.get_scale() != "log":
+            continue
+        low, high = sorted(ax.get_xlim() if name == "x" else ax.get_ylim())
+        axis.set_major_locator(FixedLocator(_nice_log_ticks(low, high)))
+        axis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 2)))
+        axis.set_minor_locator(NullLocator())
+        axis.set_minor_formatter(NullFormatter())
+
+
 def _positive(values) -> bool:
     finite = np.asarray(values, dtype=float)
     finite = finite[np.isfinite(finite)]
@@ -61,7 +109,7 @@ MARKERS = ("o", "s", "^", "D", "v", "P", "X")
 
 
 def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool = False, marks=(),
-          distinct: bool = False) -> str:
+          distinct: bool = False, ylim=None) -> str:
     """Line plot of `series` = [(label, x, y)] with vertical `marks` = [(x, label)].
 
     A log y axis is used only if asked for and every value is positive, so a
@@ -71,17 +119,25 @@ def lines(title: str, series, xlabel: str = "step", ylabel: str = "", logy: bool
     """
     fig, (ax,) = _figure()
     for i, (label, x, y) in enumerate(series):
-        if distinct:
-            ax.plot(x, y, linestyle=DASHES[i % len(DASHES)], marker=MARKERS[i % len(MARKERS)], color=SERIES[i % len(SERIES)],
+        colour = SERIES[i % len(SERIES)]
+        if distinct:  # curves that may lie on top of each other: dashes and markers tell them apart
+            ax.plot(x, y, linestyle=DASHES[i % len(DASHES)], marker=MARKERS[i % len(MARKERS)], color=colour,
                     label=label, linewidth=max(2.4 - 0.5 * i, 0.9), markersize=max(6 - i, 3), markevery=max(len(x) // 12, 1),
                     fillstyle="none")
-            continue
-        style = "o-" if len(x) <= 12 else "-"
-        ax.plot(x, y, style, color=SERIES[i % len(SERIES)], label=label, linewidth=1.4, markersize=3)
+        elif len(x) <= 12:  # a few measured points: draw the points, the joining line only as a faint guide
+            ax.plot(x, y, "-", color=colour, linewidth=0.8, alpha=0.35)
+            ax.plot(x, y, "o", color=colour, label=label, markersize=5)
+        else:
+            ax.plot(x, y, "-", color=colour, label=label, linewidth=1.4)
     for j, (x, label) in enumerate(marks):
         ax.axvline(x, color=INK, linestyle=("--", ":")[j % 2], linewidth=1.1, label=label)
+    if ylim is not None:  # a diverged series would flatten the others: it runs off the top instead
+        ax.set_ylim(*ylim)
     if logy and all(_positive(y) for _, _, y in series):
         ax.set_yscale("log")
+        readable_log(ax, "y")
+    else:
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 3)))
     _title(ax, title, xlabel, ylabel)
     if len(series) + len(marks) > 1:
         ax.legend(fontsize=8, frameon=False)
@@ -107,8 +163,10 @@ def heatmap(title: str, steps, layers: list[str], matrix, label: str) -> str:
                       extent=(steps[0] - half, steps[-1] + half, len(layers) - 0.5, -0.5))  # fmt: skip
     every = max(1, math.ceil(len(layers) / 24))
     ax.set_yticks(range(0, len(layers), every), [n[-28:] for n in layers[::every]], fontsize=7)
-    fig.colorbar(image, ax=ax, label=label, shrink=0.9)
-    _title(ax, title, "step", "")
+    bar = fig.colorbar(image, ax=ax, label=label, shrink=0.9)
+    if wide:
+        readable_log(bar.ax, "y")
+    _title(ax, title, "step (optimizer updates)", "")
     return to_uri(fig)
 
 
@@ -133,11 +191,12 @@ def scaling(batches, steps, missed, fit, perfect_from) -> str:
             ax.axvline(b_crit, color=PLUM, linestyle=":", label=f"B_crit ≈ {b_crit:.3g}")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    readable_log(ax)
     for b in missed:
         ax.axvline(b, color=BRICK, linewidth=0.8, alpha=0.5)
         ax.annotate("missed", (b, 1), xycoords=("data", "axes fraction"), color=BRICK, fontsize=7,
                     ha="center", va="bottom")  # fmt: skip
-    _title(ax, "Steps to target vs global batch", "global batch B", "steps to target")
+    _title(ax, "Steps to target vs global batch", "global batch B (samples per step)", "steps to target (steps)")
     ax.legend(fontsize=8, frameon=False)
     return to_uri(fig)
 
@@ -166,7 +225,8 @@ def lr_windows(rows) -> str:
     ax.set_xticks(range(len(rows)), [str(r[0]) for r in rows])
     if all(lr > 0 for _, trials, _, _ in rows for lr, _ in trials):
         ax.set_yscale("log")
-    _title(ax, "Learning-rate window per rung", "global batch B", "learning rate")
+        readable_log(ax, "y")
+    _title(ax, "Learning-rate window per rung", "global batch B (samples per step)", "learning rate (per step)")
     ax.legend(fontsize=8, frameon=False)
     return to_uri(fig)
 
@@ -191,5 +251,6 @@ def forecast_bars(labels: list[str], panels, cheapest: int | None, fastest: int 
                             ha="center", va="bottom", fontsize=7, color=INK)  # fmt: skip
         ax.set_ylim(0, top * 1.3)
         ax.set_xticks(range(len(labels)), labels, fontsize=7)
-        _title(ax, title, "global batch B", unit)
+        ax.yaxis.set_major_formatter(FuncFormatter(lambda v, _pos: number(v, 3)))
+        _title(ax, title, "global batch B (samples)", unit)
     return to_uri(fig)

@@ -10,6 +10,12 @@ from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from html import escape
 
+from scaledrill.report.numbers import number
+
+# The order a reader asks in: is the plumbing right (check), where does scaling break
+# (ladder, sweep), what would it cost (forecast), and what happened in the incident (run, replay).
+QUESTION_ORDER = ("check", "ladder", "sweep", "forecast", "run", "replay")
+
 CSS = """
 :root { --ink:#23303b; --paper:#fbf8f2; --rule:#e4ddd0; --teal:#1f7a78; --brick:#b5473a;
         --moss:#6b8e3e; --amber:#d08c2a; --soft:#f3eee4; }
@@ -43,6 +49,17 @@ tr.pick td { background:#eef3e3; }
 .verdict.good { color:var(--moss); } .verdict.poor { color:var(--brick); }
 .caution { border-left:5px solid var(--amber); background:#fbf1df; padding:.6rem 1rem; margin:1rem 0; }
 .absent { color:#77726a; font-size:.88rem; }
+.summary { margin:1.4rem 0 0; padding:.8rem 1.1rem; background:var(--soft); border:1px solid var(--rule); }
+.summary h2 { margin-top:0; }
+.summary ol { margin:.2rem 0; padding-left:1.3rem; }
+.summary li { margin:.35rem 0; }
+.summary a { color:var(--ink); font-weight:bold; }
+.tag { display:inline-block; min-width:6.5rem; margin-right:.6rem; padding:0 .4rem; font-size:.8rem;
+       font-family:"DejaVu Sans Mono", monospace; border:1px solid; text-align:center; }
+.tag.good { color:var(--moss); } .tag.poor { color:var(--brick); } .tag.info { color:var(--teal); }
+.note { font-size:.92rem; }
+.wide { overflow-x:auto; max-width:100%; }
+details { margin:.6rem 0; } summary { cursor:pointer; color:var(--teal); }
 """
 
 
@@ -58,6 +75,9 @@ class Section:
     source: str
     blocks: list[str] = field(default_factory=list)
     id: str = ""
+    summary: str = ""  # one plain sentence: the section's answer
+    tag: str = ""  # its verdict in a word or two
+    good: bool | None = None  # True good news, False bad, None neither
 
 
 def text(words) -> str:
@@ -85,7 +105,7 @@ def cell(value) -> str:
     if isinstance(value, bool):
         return "yes" if value else "no"
     if isinstance(value, float):
-        return f"{value:.4g}"
+        return number(value)
     if isinstance(value, (list, tuple)):
         return ", ".join(cell(v) for v in value)
     return str(value)
@@ -103,7 +123,7 @@ def table(caption: str, headers, rows, classes=None, flag_column: int | None = N
         )
         body.append(f"<tr{cls}>{cells}</tr>")
     rows_html = "".join(body)
-    return f"<table><caption>{text(caption)}</caption><thead><tr>{head}</tr></thead><tbody>{rows_html}</tbody></table>"
+    return f"<div class=\"wide\"><table><caption>{text(caption)}</caption><thead><tr>{head}</tr></thead><tbody>{rows_html}</tbody></table></div>"
 
 
 def key_values(caption: str, mapping: dict) -> str:
@@ -136,8 +156,31 @@ def assign_ids(sections: list[Section]) -> None:
         taken.add(name)
 
 
+def collapsed(label: str, html: str) -> str:
+    """Detail a reader opens on demand (plain <details>, no script)."""
+    return f"<details><summary>{text(label)}</summary>{html}</details>"
+
+
+def in_question_order(sections: list[Section]) -> list[Section]:
+    """Sections by the reader's question (QUESTION_ORDER), folder order within a kind."""
+    rank = {kind: i for i, kind in enumerate(QUESTION_ORDER)}
+    return sorted(sections, key=lambda s: rank.get(s.kind, len(rank)))
+
+
+def summary_block(sections: list[Section]) -> str:
+    """One line per section: its verdict tag and its sentence, linked to the section."""
+    items = []
+    for s in sections:
+        css = "info" if s.good is None else "good" if s.good else "poor"
+        tag = f'<span class="tag {css}">{text(s.tag or s.kind)}</span>'
+        where = f" ({s.source})" if s.source not in ("", ".") else ""
+        items.append(f'<li>{tag}<a href="#{s.id}">{text(s.title + where)}</a>: {text(s.summary or "see below.")}</li>')
+    return f'<div class="summary" id="summary"><h2>Summary</h2><ol>{"".join(items)}</ol></div>'
+
+
 def page(title: str, origin: str, sections: list[Section]) -> str:
-    """The whole HTML document; every section gets an id and a link in the contents."""
+    """The whole HTML document: the summary first, then every section in question order."""
+    sections = in_question_order(sections)
     assign_ids(sections)
     stamp = datetime.now(timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     links = "".join(f'<a href="#{s.id}">{text(s.title)}</a>' for s in sections)
@@ -149,5 +192,5 @@ def page(title: str, origin: str, sections: list[Section]) -> str:
         f'<!DOCTYPE html>\n<html lang="en"><head><meta charset="utf-8"><title>{text(title)}</title>'
         f"<style>{CSS}</style></head><body><header><h1>{text(title)}</h1>"
         f"<p>From {text(origin)} · written {stamp}</p><nav>{links}</nav></header>"
-        f"<main>{body}</main></body></html>\n"
+        f"<main>{summary_block(sections)}{body}</main></body></html>\n"
     )

@@ -15,7 +15,8 @@ from scaledrill.errors import DataError
 from scaledrill.forecast import CAUTION
 from scaledrill.replay.cluster_log import read_cluster_log
 from scaledrill.report import figures as fg
-from scaledrill.report.html import Section, absent, figure, heading, key_values, paragraph, table, verdict
+from scaledrill.report.html import Section, absent, collapsed, figure, heading, key_values, paragraph, table, verdict
+from scaledrill.report.numbers import count, duration, duration_unit, number
 from scaledrill.report.run_section import load_json, run_section
 from scaledrill.telemetry.store import read_scalars
 
@@ -28,6 +29,7 @@ def check_section(directory: Path, source: str) -> Section:
         section.blocks.append(absent([problem]))
         return section
     good = doc.get("verdict") == "match"
+    section.good, section.tag, section.summary = good, str(doc.get("verdict", "unknown")), check_sentence(doc)
     section.blocks.append(verdict(good, f"verdict: {doc.get('verdict', 'unknown')}"))
     if doc.get("tolerance_rule"):
         section.blocks.append(paragraph(f"Tolerance rule: {doc['tolerance_rule']}"))
@@ -42,7 +44,9 @@ def check_section(directory: Path, source: str) -> Section:
         if t:
             trajectories.append((path.get("name"), t.get("steps"), t.get("max_abs"), t.get("tolerance"), t.get("ok")))
     headers = ("path", "layer", "max abs diff", "max rel diff", "tolerance", "result")
-    section.blocks.append(table("Gradient of each path vs the true large batch, per layer", headers, rows, classes, 5))
+    layers = table("Gradient of each path vs the true large batch, per layer", headers, rows, classes, 5)
+    # on a match every row says "within": the detail stays one click away instead of filling the page
+    section.blocks.append(collapsed(f"Every layer of every path ({len(rows)} rows)", layers) if good else layers)
     if trajectories:
         classes = ["ok" if t[-1] else "bad" for t in trajectories]
         rows = [(*t[:-1], "within" if t[-1] else "OUTSIDE") for t in trajectories]
@@ -53,6 +57,19 @@ def check_section(directory: Path, source: str) -> Section:
         rows = [(d.get("cause"), d.get("evidence"), d.get("fix")) for d in diagnosis]
         section.blocks.append(table("Diagnosis: likely causes of the mismatch", ("cause", "evidence", "fix"), rows))
     return section
+
+
+def check_sentence(doc: dict) -> str:
+    """Which paths were compared and, on a mismatch, the first named cause."""
+    names = [str(p.get("name")) for p in doc.get("paths", [])]
+    compared = f"{len(names)} gradient path{'s' if len(names) != 1 else ''} ({', '.join(names)})" if names else "the paths"
+    if doc.get("verdict") == "match":
+        return f"Every one of {compared} matches the true large-batch gradient within tolerance."
+    off = {str(p.get("name")) for p in doc.get("paths", []) for layer in p.get("layers", []) if not layer.get("ok")}
+    off |= {str(p.get("name")) for p in doc.get("paths", []) if (p.get("trajectory") or {}).get("ok") is False}
+    causes = [d.get("cause") for d in doc.get("diagnosis") or [] if d.get("cause")]
+    cause = f"; likely cause: {causes[0]}" if causes else "; no cause named"
+    return f"Mismatch on {', '.join(sorted(off)) or 'some path'} of {compared}{cause}."
 
 
 def _cluster_log(path: Path) -> tuple[dict, str | None]:
@@ -82,6 +99,7 @@ def replay_section(directory: Path, source: str) -> Section:
         section.blocks.append(absent([problem]))
         return section
     variants, missing = doc.get("variants", []), []
+    section.good, section.tag, section.summary = replay_verdict(doc)
     curves = {}
     checkpoint = str(doc.get("checkpoint") or "")
     from_step = doc.get("from_step")
@@ -138,6 +156,24 @@ def _upto(series: tuple, step) -> tuple:
     return np.asarray(steps)[keep], np.asarray(values)[keep]
 
 
+def replay_verdict(doc: dict) -> tuple[bool | None, str, str]:
+    """Which variants ran through without diverging, and the best of them by final loss."""
+    variants = doc.get("variants", [])
+    held = [v for v in variants if not v.get("diverged")]
+    start = f"Resumed at step {doc['from_step']}: " if doc.get("from_step") is not None else ""
+    if not variants:
+        return None, "no variants", start + "no variant was run."
+    if not held:
+        return False, "none fixed it", start + f"all {len(variants)} variants diverged again."
+    best = min(held, key=lambda v: v["final_loss"] if v.get("final_loss") is not None else float("inf"))
+    others = [str(v.get("name")) for v in held if v is not best]
+    also = f" ({', '.join(others)} held too)" if others else ""
+    failed = [str(v.get("name")) for v in variants if v.get("diverged")]
+    again = f"; {', '.join(failed)} diverged again" if failed else ""
+    return True, f"fixed: {best.get('name')}", (f"{start}variant {best.get('name')} fixed it with the lowest final "
+                                                f"loss, {number(best.get('final_loss'))}{also}{again}.")  # fmt: skip
+
+
 def _search_rows(search: dict) -> list:
     rows = []
     for batch in sorted(search, key=float):
@@ -148,6 +184,27 @@ def _search_rows(search: dict) -> list:
     return rows
 
 
+FIT_NAMES = {"s_min": "S_min (steps)", "e_min": "E_min (samples)", "b_noise": "B_noise (samples)",
+             "b_crit": "B_crit = E_min/S_min (samples)", "residual": "fit residual (log steps, RMS)"}  # fmt: skip
+
+
+def ladder_verdict(doc: dict) -> tuple[bool | None, str, str]:
+    """The critical batch and the first rung past which doubling the batch stops paying."""
+    rungs, fit = doc.get("rungs", []), doc.get("fit") or {}
+    reached = [r for r in rungs if r.get("steps_to_target") and not r.get("diverged")]
+    broke = [r["global_batch"] for r in rungs if r.get("diverged") or r.get("error")]
+    tail = f"; diverged or failed at B={', '.join(str(b) for b in broke)}" if broke else ""
+    if not fit or fit.get("b_crit") is None:
+        return None, "no fit", (f"{len(reached)} of {len(rungs)} rungs reached the target: too few to place the "
+                                f"critical batch{tail}.")  # fmt: skip
+    b_crit = fit["b_crit"]
+    past = [r["global_batch"] for r in rungs if r.get("regime") in ("diminishing returns", "plateau")]
+    where = (f"scaling stops paying from B={past[0]} (steps no longer halve when the batch doubles)" if past
+             else f"every rung that reached the target, up to B={max(r['global_batch'] for r in reached)}, "
+             "still scales almost perfectly")
+    return not broke, f"B_crit ≈ {number(b_crit)}", f"Critical batch ≈ {number(b_crit)} samples; {where}{tail}."
+
+
 def ladder_section(directory: Path, source: str) -> Section:
     """A batch-size ladder: steps-to-target vs batch with the fit, and the LR window."""
     section = Section("ladder", "Batch-size ladder", source)
@@ -155,19 +212,30 @@ def ladder_section(directory: Path, source: str) -> Section:
     if doc is None:
         section.blocks.append(absent([problem]))
         return section
+    return ladder_blocks(section, doc)
+
+
+def ladder_blocks(section: Section, doc: dict) -> Section:
+    """The ladder section's contents from a ladder.json payload (read, or gathered from jobs)."""
     rungs, fit, search = doc.get("rungs", []), doc.get("fit"), doc.get("search")
-    headers = ("global batch", "lr", "steps to target", "samples to target", "final metric", "noise scale",
-               "regime", "diverged", "wall s")  # fmt: skip
+    section.good, section.tag, section.summary = ladder_verdict(doc)
+    section.blocks.append(paragraph(section.summary))
+    headers = ("global batch (samples)", "lr", "steps to target", "samples to target", "final metric",
+               "noise scale (samples)", "regime", "diverged", "wall time")  # fmt: skip
     keys = ("global_batch", "lr", "steps_to_target", "samples_to_target", "final_metric", "noise_scale", "regime",
             "diverged", "wall_seconds")  # fmt: skip
-    rows = [tuple(r.get(k) for k in keys) for r in rungs]
+    rows = [tuple(r.get(k) for k in keys[:-1]) + (duration(r.get("wall_seconds")),) for r in rungs]
     classes = ["bad" if r[7] else "" for r in rows]  # diverged rungs
     section.blocks.append(table(f"Rungs (grow: {doc.get('grow')})", headers, rows, classes))
     if fit:
-        section.blocks.append(key_values("Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)", fit))
+        section.blocks.append(table("Fit S = S_min(1 + B_noise/B) (McCandlish et al. 2018)", ("quantity", "value"),
+                                    [(FIT_NAMES.get(k, k), v) for k, v in fit.items()]))  # fmt: skip
     reached = sorted((r["global_batch"], r["steps_to_target"]) for r in rungs if r.get("steps_to_target"))
     missed = [r["global_batch"] for r in rungs if not r.get("steps_to_target")]
-    if reached:
+    if len(reached) == 1:
+        section.blocks.append(paragraph(f"One rung reached the target (B={reached[0][0]} in {reached[0][1]} steps): "
+                                        "no curve to draw until a second one does.", "note"))  # fmt: skip
+    elif reached:
         curve = tuple(float(fit.get(k, "nan")) for k in ("s_min", "e_min", "b_crit")) if fit else None  # "Infinity" too
         uri = fg.scaling([b for b, _ in reached], [s for _, s in reached], missed, curve, reached[0])
         section.blocks.append(figure(uri, "Steps to target against global batch, log-log, with the perfect-scaling "
@@ -176,13 +244,37 @@ def ladder_section(directory: Path, source: str) -> Section:
     if search:
         lr_rows = _search_rows(search)
         section.blocks.append(figure(fg.lr_windows(lr_rows), "Learning-rate trials and window per global batch"))
-        section.blocks.append(table("Learning-rate search per rung", ("global batch", "best lr", "window", "trials",
-                                    "samples spent"), [(b, best, w, len(t), search[k].get("samples_spent"))
+        section.blocks.append(table("Learning-rate search per rung", ("global batch (samples)", "best lr", "window",
+                                    "trials", "samples spent"), [(b, best, w, len(t), count(search[k].get("samples_spent")))
                                     for (b, t, w, best), k in zip(lr_rows, sorted(search, key=float))]))  # fmt: skip
     else:
         missing.append("learning-rate search")
     section.blocks.append(absent(missing))
     return section
+
+
+def _scaled(seconds: list) -> tuple[str, list]:
+    """An axis label and the values in the one time unit that suits them."""
+    unit, size = duration_unit(seconds)
+    return f"time ({unit})", [None if v is None else v / size for v in seconds]
+
+
+def forecast_verdict(rungs: list[dict], cheapest: int | None, fastest: int | None) -> tuple[bool | None, str, str]:
+    """The cheapest and the fastest rung, each with its cost and its speed-up over the smallest batch."""
+    base = rungs[0] if rungs else None
+    if base is None or (cheapest is None and fastest is None):
+        return None, "no pick", "No rung reaches the target on this cluster, so there is nothing to price."
+
+    def told(i: int) -> str:
+        r = rungs[i]
+        t, t0 = r.get("time_to_target_s"), base.get("time_to_target_s")
+        speed = f", {number(t0 / t)}× the speed of B={base['global_batch']}" if t and t0 and r is not base else ""
+        return f"B={r['global_batch']} on {r.get('devices')} devices: {duration(t)} to target, cost {number(r.get('cost'))}{speed}"
+
+    if cheapest == fastest:
+        return True, f"pick B={rungs[cheapest]['global_batch']}", f"Cheapest and fastest: {told(cheapest)}."
+    parts = [f"{name} {told(i)}" for name, i in (("cheapest", cheapest), ("fastest", fastest)) if i is not None]
+    return True, "cheapest ≠ fastest", ("; ".join(parts) + ".").capitalize()
 
 
 def forecast_section(directory: Path, source: str) -> Section:
@@ -196,18 +288,21 @@ def forecast_section(directory: Path, source: str) -> Section:
     rungs = doc.get("rungs", [])
     pick = lambda flag: next((i for i, r in enumerate(rungs) if r.get(flag)), None)  # noqa: E731
     cheapest, fastest = pick("cheapest"), pick("fastest")
+    section.good, section.tag, section.summary = forecast_verdict(rungs, cheapest, fastest)
+    section.blocks.insert(0, paragraph(section.summary))
     if rungs:
-        hours = [None if r.get("time_to_target_s") is None else r["time_to_target_s"] / 3600 for r in rungs]
-        panels = [("Step time", "seconds", [r.get("step_s") for r in rungs]), ("Time to target", "hours", hours),
-                  ("Cost to target", "price units", [r.get("cost") for r in rungs])]  # fmt: skip
+        panels = [("Step time", *_scaled([r.get("step_s") for r in rungs])),
+                  ("Time to target", *_scaled([r.get("time_to_target_s") for r in rungs])),
+                  ("Cost to target", "cost (price units)", [r.get("cost") for r in rungs])]  # fmt: skip
         uri = fg.forecast_bars([str(r.get("global_batch")) for r in rungs], panels, cheapest, fastest)
         section.blocks.append(figure(uri, "Projected step time, time to target and cost per global batch; "
                                      "cheapest and fastest marked"))  # fmt: skip
-    keys = ("global_batch", "devices", "steps_to_target", "compute_s", "comm_s", "exposed_comm_s", "step_s",
-            "time_to_target_s", "device_hours", "cost")  # fmt: skip
-    rows = [(*(r.get(k) for k in keys), ", ".join(f for f in ("cheapest", "fastest") if r.get(f))) for r in rungs]
-    headers = ("global batch", "devices", "steps to target", "compute s", "all-reduce s", "exposed s", "step s",
-               "to target s", "device-hours", "cost", "pick")  # fmt: skip
+    times = ("compute_s", "comm_s", "exposed_comm_s", "step_s", "time_to_target_s")
+    rows = [(r.get("global_batch"), r.get("devices"), r.get("steps_to_target"), *(duration(r.get(k)) for k in times),
+             r.get("device_hours"), r.get("cost"), ", ".join(f for f in ("cheapest", "fastest") if r.get(f)))
+            for r in rungs]  # fmt: skip
+    headers = ("global batch (samples)", "devices", "steps to target", "compute per step", "all-reduce per step",
+               "exposed all-reduce", "step time", "time to target", "device-hours (h)", "cost (price units)", "pick")  # fmt: skip
     section.blocks.append(table("Projection per rung", headers, rows, ["pick" if r[-1] else "" for r in rows]))
     assumptions = doc.get("assumptions") or {}
     section.blocks.append(heading("Assumptions"))
