@@ -103,5 +103,5 @@ def test_the_command_line_names_a_misspelt_key_and_the_nearest(tmp_path, overrid
 
 
 def test_the_command_line_names_the_renamed_preset_group(tmp_path):
-    _one_paragraph(run_cli("recipe", "+scenario=divergence", f"hydra.run.dir={tmp_path}"), "+scenario")
+    _one_paragraph(run_cli("recipe", "+recipe=divergence", f"hydra.run.dir={tmp_path}"), "+scenario")
     _one_paragraph(run_cli("recipe", "optim=adam", f"hydra.run.dir={tmp_path}"), "optim=adamw", "lars")

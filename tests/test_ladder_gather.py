@@ -22,9 +22,9 @@ def test_gathered_jobs_give_the_fit_one_ladder_process_gives(tmp_path):
     assert gathered["noise_scale_measured"] == whole["noise_scale_measured"]
 
 
-def test_ladders_with_different_targets_are_not_one_ladder():
+def test_ladders_with_different_goals_are_not_one_ladder():
     rung = {"global_batch": 8, "steps_to_target": 10, "diverged": False, "noise_scale": None}
-    a = {"mode": "workers", "target": {"metric": "loss", "value": 0.1, "mode": "below"}, "rungs": [rung]}
-    b = dict(a, target={"metric": "loss", "value": 0.2, "mode": "below"}, rungs=[rung | {"global_batch": 16}])
-    with pytest.raises(ValueError, match="different modes or targets"):
+    a = {"grow": "workers", "goal": {"metric": "loss", "value": 0.1, "reached_when": "below"}, "rungs": [rung]}
+    b = dict(a, goal={"metric": "loss", "value": 0.2, "reached_when": "below"}, rungs=[rung | {"global_batch": 16}])
+    with pytest.raises(ValueError, match="different growths or goals"):
         gather([a, b])

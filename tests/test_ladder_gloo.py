@@ -87,7 +87,7 @@ def test_gloo_rung_reads_the_first_evaluated_hit_back_and_ignores_what_its_budge
     here, there = local["rungs"][0], gloo["rungs"][0]
     assert summary_of(here)["stopped_early"] and not here["diverged"]  # the local rung stops at the hit
     summary = summary_of(there)
-    assert summary["diverged"] and "loss spike" in summary["stop_reason"] and 26 < summary["steps"] < 150
+    assert summary["diverged"] and ("loss spike" in summary["stop_reason"] or "loss rise" in summary["stop_reason"]) and 26 < summary["steps"] < 150
     history = {int(k): v["loss"] for k, v in summary["eval_history"].items()}
     assert sorted(history) == [*range(5, summary["steps"], 5), summary["steps"]]  # every check, and the stop
     first = min(s for s, v in history.items() if v < 0.3)

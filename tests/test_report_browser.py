@@ -90,7 +90,7 @@ def real_results(top: Path) -> None:
                            "layout.accum=2", "check.paths=[accumulation,fused]", "check.steps=2", name="check"),
                top / "check")  # fmt: skip
     ladder_verb(make_config(*quad, "layout.workers=4", "optim.lr=0.5", "telemetry.layer_every=0", "train.eval_every=0",
-                            "ladder.rungs=3", "ladder.target.value=0.05", "ladder.check_every=2",
+                            "ladder.rungs=3", "ladder.goal.value=0.05", "ladder.check_every=2",
                             "ladder.max_steps=60", name="ladder"), top / "ladder")  # fmt: skip
     forecast_verb(make_config("task=digits", f"forecast.ladder={top / 'ladder'}", name="forecast"), top / "forecast")
 

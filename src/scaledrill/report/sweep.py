@@ -148,7 +148,7 @@ def gathered_ladder(directories: list[Path], sources: list[str]) -> Section | No
     from scaledrill.report.sections import ladder_blocks
 
     docs = [load_json(d / "ladder.json")[0] for d in directories]
-    if any(d is None for d in docs) or len({(d.get("mode"), str(d.get("target"))) for d in docs}) != 1:
+    if any(d is None for d in docs) or len({(d.get("grow"), str(d.get("goal"))) for d in docs}) != 1:
         return None
     batches = [r["global_batch"] for d in docs for r in d.get("rungs", [])]
     overrides = [_overrides(d) for d in directories]
