@@ -24,7 +24,7 @@ from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
 from scaledrill.nn.stock import adapt_model
-from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from scaledrill.optim import build_optimizer, clip_flat, resolve_recipe, set_lr
 from scaledrill.sync import build_sync
 from scaledrill.sync.path import grad_path
 from scaledrill.sync.summary import sync_summary
@@ -34,7 +34,7 @@ from scaledrill.tasks.sampler import Sampler
 from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
-from scaledrill.train.grads import GradComputer, flatten_params, write_grads
+from scaledrill.train.grads import GradComputer, flatten_params
 from scaledrill.train.memory import check_fits
 from scaledrill.train.signals import StopFlag
 
@@ -132,6 +132,8 @@ class Trainer:
 
         Started here, finished by the returned function: the caller syncs the
         gradient meanwhile, so this small reduce costs no extra round trip."""
+        if self.comm.size == 1:  # nothing to share: the sum over one process is the values themselves
+            return lambda: values
         parts = [torch.tensor(values, dtype=torch.float64)] + [b.detach().reshape(-1).double() for b in buffers]
         shared = torch.cat(parts)
         pending = self.comm.all_reduce_start(shared)
@@ -177,9 +179,9 @@ class Trainer:
             small_sq = float(scalars[1]) / W
             big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum())
 
-        write_grads(average, self.params)
+        self.grads.write_grads(average)
         clip = self.clip_norm
-        grad_norm = clip_by_global_norm(self.params, clip)
+        grad_norm = clip_flat(average, clip)  # every .grad is a view of `average`
         lr = self.recipe.lr_at(step)
         set_lr(self.optimizer, lr)
         layers_due = self._layers_due(step)

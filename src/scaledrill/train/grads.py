@@ -60,6 +60,7 @@ class GradComputer:
         # integer counters) are the same everywhere and are left alone.
         self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
         self.numel = sum(p.numel() for p in self.params)
+        self.flat = FlatLayout(self.params)
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
@@ -68,12 +69,16 @@ class GradComputer:
 
     # -- fused ---------------------------------------------------------------
     def fused(self, micro: list[dict], scale: float) -> StepGrads:
-        out = torch.zeros(1, self.numel, dtype=self.params[0].dtype)
-        views = _views(out[0], self.params)
+        out, views = None, None
         total = 0.0
         for batch in micro:
             value = _sum_loss(self.loss, self.model, batch, scale, self.step)
-            torch._foreach_add_(views, torch.autograd.grad(value, self.params))
+            grads = torch.autograd.grad(value, self.params)
+            if out is None:  # the first micro-step's gradients are the buffer: one copy, no zero fill
+                out = torch.cat([g.reshape(-1) for g in grads]).unsqueeze(0)
+                views = self.flat.views(out[0])
+            else:
+                torch._foreach_add_(views, grads)
             total += float(value.detach())
         return StepGrads(out, total)
 
@@ -148,7 +153,7 @@ class GradComputer:
             with torch.no_grad():
                 for n, t in start.items():
                     named[n].copy_(t)
-            views = _views(out[v], self.params)
+            views = self.flat.views(out[v])
             for batch in split:
                 one = {k: t[v] for k, t in batch.items()}
                 value = _sum_loss(self.loss, self.model, one, scale, self.step)
@@ -164,20 +169,39 @@ class GradComputer:
     def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:
         return getattr(self, path)(micro, scale)
 
-
-def _views(flat: torch.Tensor, params: list[torch.Tensor]) -> list[torch.Tensor]:
-    """Views of `flat` shaped like each parameter, in order."""
-    views, offset = [], 0
-    for p in params:
-        views.append(flat[offset : offset + p.numel()].view_as(p))
-        offset += p.numel()
-    return views
+    def write_grads(self, flat: torch.Tensor) -> None:
+        """Give every parameter its slice of the averaged flat gradient as `.grad`."""
+        for p, view in zip(self.params, self.flat.views(flat)):
+            p.grad = view
 
 
-def write_grads(flat: torch.Tensor, params: list[torch.Tensor]) -> None:
-    """Give every parameter its slice of the averaged flat gradient as `.grad`."""
-    for p, view in zip(params, _views(flat, params)):
-        p.grad = view
+class FlatLayout:
+    """Where each parameter sits in a flat vector in `model.parameters()` order.
+
+    Worked out once: a view per parameter is then one `as_strided` call (slicing and
+    reshaping cost two calls and their checks, a visible share of a 1 ms step)."""
+
+    def __init__(self, params: list[torch.Tensor]):
+        self.spec, offset = [], 0
+        for p in params:
+            self.spec.append((tuple(p.shape), _contiguous_strides(p.shape), offset))
+            offset += p.numel()
+        self.numel = offset
+
+    def views(self, flat: torch.Tensor) -> list[torch.Tensor]:
+        """Views of the contiguous 1-d `flat` shaped like each parameter, in order."""
+        if flat.dim() != 1 or flat.numel() != self.numel or flat.stride(0) != 1:
+            raise ValueError(f"expected a contiguous vector of {self.numel} values, got shape {tuple(flat.shape)}")
+        base = flat.storage_offset()
+        return [flat.as_strided(shape, strides, base + offset) for shape, strides, offset in self.spec]
+
+
+def _contiguous_strides(shape) -> tuple[int, ...]:
+    strides, step = [], 1
+    for size in reversed(tuple(shape)):
+        strides.append(step)
+        step *= size
+    return tuple(reversed(strides))
 
 
 def flatten_params(params: list[torch.Tensor]) -> torch.Tensor:
