@@ -79,7 +79,7 @@ class GhostBatchNorm(nn.Module):
         if x.dim() < 2 or x.shape[1] != self.num_features:
             raise ValueError(f"expected [N, {self.num_features}, ...], got {list(x.shape)}")
         if self.training and self.collective is None:
-            return self._group_forward(x)  # the affine step runs inside torch's kernel
+            return self._group_forward(x)
         if self.training:
             y = self._global_forward(x)
         else:
@@ -99,15 +99,23 @@ class GhostBatchNorm(nn.Module):
         count = g * rest.numel()
         if count < 2:
             raise ValueError(f"each group needs more than one value per channel, got {count}")
-        # Every (group, channel) pair becomes a channel of its own, so torch's kernel does
-        # steps 1-2 in one pass forward and one backward (composed ops took ~10 passes).
-        folded = x.reshape(groups, g, C, *rest).transpose(0, 1).reshape(g, groups * C, *rest)
-        weight, bias = (None, None) if self.weight is None else (self.weight.repeat(groups), self.bias.repeat(groups))
-        y = nn.functional.batch_norm(folded, None, None, weight, bias, training=True, eps=self.eps)
+        # Composed ops on the [groups, g, C, rest] view: on CPU they beat folding every (group,
+        # channel) pair into a channel of torch's batch_norm kernel, whose per-channel reductions
+        # over a few values (and var_mean's) are slow: 4x at [512, 64] in groups of 8, 1.2-1.7x
+        # on the digits convolutions (scripts/bench, overhead section). Two passes (mean, then
+        # the centred squares) keep the variance sound.
+        xg = x.reshape(groups, g, C, -1)
+        mean = xg.mean(dim=(1, 3), keepdim=True)  # step 1
+        centred = xg - mean
+        var = centred.square().mean(dim=(1, 3), keepdim=True)
+        scale = torch.rsqrt(var + self.eps)  # step 2
+        if self.weight is not None:
+            y = centred * (scale * self.weight.view(1, 1, C, 1)) + self.bias.view(1, 1, C, 1)
+        else:
+            y = centred * scale
         with torch.no_grad():  # step 3
-            var, mean = torch.var_mean(folded, dim=[0, *range(2, folded.dim())], correction=0)
             self._update_running(mean.view(groups, C).mean(0), var.view(groups, C).mean(0) * (count / (count - 1)))
-        return y.reshape(g, groups, C, *rest).transpose(0, 1).reshape(x.shape)
+        return y.reshape(x.shape)
 
     @torch.no_grad()
     def _update_running(self, mean: torch.Tensor, unbiased_var: torch.Tensor) -> None:
