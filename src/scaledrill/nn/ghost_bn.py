@@ -104,10 +104,7 @@ class GhostBatchNorm(nn.Module):
         # over a few values (and var_mean's) are slow: 4x at [512, 64] in groups of 8, 1.2-1.7x
         # on the digits convolutions (scripts/bench, overhead section). Two passes (mean, then
         # the centred squares) keep the variance sound.
-        xg = x.reshape(groups, g, C, -1)
-        mean = xg.mean(dim=(1, 3), keepdim=True)  # step 1
-        centred = xg - mean
-        var = centred.square().mean(dim=(1, 3), keepdim=True)
+        centred, mean, var = self.group_moments(x)  # step 1
         scale = torch.rsqrt(var + self.eps)  # step 2
         if self.weight is not None:
             y = centred * (scale * self.weight.view(1, 1, C, 1)) + self.bias.view(1, 1, C, 1)
@@ -116,6 +113,14 @@ class GhostBatchNorm(nn.Module):
         with torch.no_grad():  # step 3
             self._update_running(mean.view(groups, C).mean(0), var.view(groups, C).mean(0) * (count / (count - 1)))
         return y.reshape(x.shape)
+
+    def group_moments(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """Step 1 on the [groups, g, C, rest] view: (x - mean, mean, biased variance), the last two keepdim."""
+        g = x.shape[0] if self.group_size is None else self.group_size
+        xg = x.reshape(x.shape[0] // g, g, self.num_features, -1)
+        mean = xg.mean(dim=(1, 3), keepdim=True)
+        centred = xg - mean
+        return centred, mean, centred.square().mean(dim=(1, 3), keepdim=True)
 
     @torch.no_grad()
     def _update_running(self, mean: torch.Tensor, unbiased_var: torch.Tensor) -> None:

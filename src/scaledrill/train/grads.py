@@ -9,8 +9,11 @@ global token count and never as a mean of micro-batch means.
 - fused: one forward/backward per micro-step over all V·b samples of the process;
   returns [1, n] = Σ over this process's workers of g_w. Ghost batch
   normalization (group = b) keeps BatchNorm statistics per worker.
-- vmap: per-worker gradients with torch.func; returns [V, n]. BatchNorm buffers
-  go in batched (one copy per worker) and come back as their mean.
+- vmap: per-worker gradients; returns [V, n]. When every module holding
+  parameters has a per-worker rule (rows.py: Linear, LayerNorm, Embedding), the
+  rows come from one fused forward/backward, after the first call has checked
+  them against torch.func.vmap; otherwise by vmap, where BatchNorm buffers go in
+  batched (one copy per worker) and come back as their mean.
 - loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
   The first time vmap fails on a model (recurrent layers, in-place or
   data-dependent code), this run falls back to loop for good and says so once.
@@ -32,6 +35,7 @@ from torch.func import functional_call, grad, vmap
 from scaledrill.errors import ScaledrillError
 from scaledrill.nn.dropout import key_samples
 from scaledrill.tasks.base import forward_loss
+from scaledrill.train.rows import RuleRows, agree, rule_cause
 
 # Modules torch.func.vmap cannot run per worker (their kernels take no batched inputs).
 NO_VMAP = (torch.nn.RNNBase,)
@@ -64,6 +68,10 @@ class GradComputer:
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
+        # Per-worker rows from one fused pass: None when a module has no rule or the first call's check failed.
+        self.rule_cause = rule_cause(model)
+        self.rules = RuleRows(model, self.params, workers_per_proc) if self.rule_cause is None else None
+        self.rules_checked = False
         self.vmap_failure = next((f"{type(m).__name__} has no per-worker (vmap) kernel" for m in model.modules()
                                   if isinstance(m, NO_VMAP)), None)
 
@@ -98,7 +106,39 @@ class GradComputer:
                 named[n].copy_(value.mean(0) if value.is_floating_point() else value[0])
 
     def vmap(self, micro: list[dict], scale: float) -> StepGrads:
-        """Per-worker gradients by torch.func.vmap, or by loop once vmap has failed on this model."""
+        """Per-worker gradients by the rules of rows.py, by torch.func.vmap, or by loop once vmap has failed on this model."""
+        if self.rules is not None and self.rules_checked:
+            rows, total = self.rules.compute(self.model, self._forward_sum(scale), micro, self.params[0].dtype)
+            return StepGrads(rows, total)
+        if self.rules is not None:
+            return self._check_rules(micro, scale)
+        return self._per_worker(micro, scale)
+
+    def _forward_sum(self, scale: float):
+        return lambda batch: _sum_loss(self.loss, self.model, batch, scale, self.step)
+
+    def _check_rules(self, micro: list[dict], scale: float) -> StepGrads:
+        """First call: rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
+        named = dict(self.model.named_buffers())
+        start = {n: b.detach().clone() for n, b in named.items()}
+        try:
+            rows, _ = self.rules.compute(self.model, self._forward_sum(scale), micro, self.params[0].dtype)
+        except ScaledrillError:
+            raise
+        except Exception as err:  # noqa: BLE001 - a model the rules do not fit fails in many ways
+            rows, self.rule_cause = None, f"{type(err).__name__}: {err}"
+        with torch.no_grad():
+            for n, b in named.items():
+                b.copy_(start[n])
+        reference = self._per_worker(micro, scale)
+        if rows is not None and not agree(rows, reference.local, self.params):
+            self.rule_cause = "its rows differ from vmap's (a parameter used outside its module, or samples not along dim 0)"
+        if self.rule_cause is not None:
+            self.rules = None
+        self.rules_checked = True
+        return reference
+
+    def _per_worker(self, micro: list[dict], scale: float) -> StepGrads:
         if self.vmap_failure is not None:
             result = self.loop(micro, scale)
             self.announce_fallback()
