@@ -131,6 +131,18 @@ class GhostBatchNorm(nn.Module):
         return centred, mean, centred.square().mean(dim=(1, 3), keepdim=True)
 
     @torch.no_grad()
+    def normalized(self, x: torch.Tensor) -> torch.Tensor:
+        """x̂ of step 2 before the affine step, shaped like x, by the same kernels as the training forward."""
+        n, C = x.shape[0], self.num_features
+        g = n if self.group_size is None else self.group_size
+        if x[0].numel() == C:
+            centred, _, var = self.group_moments(x)
+            return (centred * torch.rsqrt(var + self.eps)).reshape(x.shape)
+        folded = x.reshape(n // g, g, C, -1).transpose(1, 2).reshape(n // g, C, -1).contiguous()
+        normed = torch.native_group_norm(folded, None, None, n // g, C, folded.shape[-1], C, self.eps)[0]
+        return normed.reshape(n // g, C, g, -1).transpose(1, 2).reshape(x.shape)
+
+    @torch.no_grad()
     def _update_running(self, mean: torch.Tensor, unbiased_var: torch.Tensor) -> None:
         self.num_batches_tracked.add_(1)
         if self.momentum is None:  # cumulative average, as torch does for momentum=None

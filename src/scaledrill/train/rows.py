@@ -101,9 +101,8 @@ def _ghost_batch_norm(m: GhostBatchNorm, x, g, V):
         raise ValueError("GhostBatchNorm with global statistics or in eval mode has no per-worker rule")
     if (x.shape[0] // V) % (m.group_size or x.shape[0]):
         raise ValueError(f"GhostBatchNorm groups of {m.group_size} samples span several workers")
-    centred, _, var = m.group_moments(x)
     C = m.num_features
-    normed = (centred * torch.rsqrt(var + m.eps)).reshape(V, -1, C, centred.shape[-1])
+    normed = m.normalized(x).reshape(V, -1, C, x[0].numel() // C)
     gs = g.reshape(V, -1, C, normed.shape[-1])
     return {"weight": (gs * normed).sum(dim=(1, 3)), "bias": gs.sum(dim=(1, 3))}
 
