@@ -10,10 +10,11 @@ global token count and never as a mean of micro-batch means.
   returns [1, n] = Σ over this process's workers of g_w. Ghost batch
   normalization (group = b) keeps BatchNorm statistics per worker.
 - vmap: per-worker gradients; returns [V, n]. When every module holding
-  parameters has a per-worker rule (rows.py: Linear, LayerNorm, Embedding), the
-  rows come from one fused forward/backward, after the first call has checked
-  them against torch.func.vmap; otherwise by vmap, where BatchNorm buffers go in
-  batched (one copy per worker) and come back as their mean.
+  parameters has a per-worker rule (rows.py: Linear, LayerNorm, Embedding,
+  Conv2d, GhostBatchNorm), the rows come from one fused forward/backward, after
+  the first call has checked them against torch.func.vmap; otherwise by vmap,
+  where BatchNorm buffers go in batched (one copy per worker) and come back as
+  their mean.
 - loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
   The first time vmap fails on a model (recurrent layers, in-place or
   data-dependent code), this run falls back to loop for good and says so once.
