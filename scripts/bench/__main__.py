@@ -1,6 +1,6 @@
 """Benchmarks of the simulator against the physical limit, as interleaved ratios.
 
-    python scripts/bench [--quick] [--only paths,compress,telemetry,dist,memory] [--threads 1] [--out bench.json]
+    python scripts/bench [--quick] [--only overhead,paths,compress,telemetry,dist,memory] [--threads 1] [--out bench.json]
 
 Each comparison runs its cases in alternating blocks after a warm-up and
 reports the median per-round ratio with its min–max and interquartile range,
@@ -18,15 +18,17 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # make `bench` importable (also in spawned children)
 
-from bench import distributed, memory, single  # noqa: E402
+from bench import distributed, memory, overhead, single  # noqa: E402
 from bench.common import pin_threads  # noqa: E402
 from bench.table import show  # noqa: E402
 from bench.timing import use_clock  # noqa: E402
 
-SECTIONS = ("paths", "compress", "telemetry", "dist", "memory")
+SECTIONS = ("overhead", "paths", "compress", "telemetry", "dist", "memory")
 
 # Rounds per comparison (full, quick). Loop steps are ~10x slower, so they get fewer.
 PLAN = {
+    "overhead": ({"rounds": {"LayerNorm MLP": 12, "BatchNorm MLP": 12, "digits CNN": 8, "char transformer": 4}},
+                 {"rounds": {"LayerNorm MLP": 5, "BatchNorm MLP": 5, "digits CNN": 3, "char transformer": 2}, "block": 25}),
     "paths": ({"rounds": 30, "loop_rounds": 7}, {"rounds": 10, "loop_rounds": 2}),
     "compress": ({"rounds": 9}, {"rounds": 3}),
     "telemetry": ({"rounds": 9}, {"rounds": 3}),
@@ -36,6 +38,8 @@ PLAN = {
 
 
 def run_section(name: str, threads: int, plan: dict) -> list:
+    if name == "overhead":
+        return overhead.run(**plan)
     if name == "paths":
         return single.paths(**plan)
     if name == "compress":

@@ -10,9 +10,8 @@ import tempfile
 from pathlib import Path
 
 import torch
-from omegaconf import OmegaConf
 
-from .common import MICRO, ROOT, WORKERS, step0_fetch, trainer
+from .common import MICRO, WORKERS, step0_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 COMPRESSORS = ("fp16", "bf16", "topk", "randk", "sign", "qsgd", "powersgd")
@@ -88,8 +87,10 @@ def observed(tr, monitor):
 
 
 def default_noise_period() -> int:
-    """`telemetry.noise_every` as the shipped config sets it (the runs above turn it off)."""
-    return int(OmegaConf.load(ROOT / "src" / "scaledrill" / "conf" / "telemetry" / "default.yaml").noise_every)
+    """`telemetry.noise_every` as the shipped schema sets it (the runs above turn it off)."""
+    from scaledrill.telemetry.settings import DEFAULTS
+
+    return int(DEFAULTS.noise_every)
 
 
 def telemetry(rounds: int) -> list[Row]:

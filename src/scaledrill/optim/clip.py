@@ -21,3 +21,14 @@ def clip_by_global_norm(params, max_norm: float | None) -> float:
     if max_norm is None:
         return float(torch.nn.utils.get_total_norm([p.grad for p in grads]))
     return float(torch.nn.utils.clip_grad_norm_(grads, max_norm))
+
+
+def clip_flat(flat: torch.Tensor, max_norm: float | None) -> float:
+    """`clip_by_global_norm` for gradients held in one flat vector (the engine's averaged
+    gradient, of which every `.grad` is a view): one norm kernel and one scale instead of
+    one per tensor. Scales `flat` in place by min(1, max_norm / (‖g‖ + 1e-6)), as torch's
+    clip_grad_norm_ does; returns ‖g‖ before."""
+    norm = torch.linalg.vector_norm(flat)
+    if max_norm is not None:
+        flat.mul_(torch.clamp(max_norm / (norm + 1e-6), max=1.0))
+    return float(norm)

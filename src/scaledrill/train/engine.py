@@ -24,7 +24,7 @@ from scaledrill.errors import ConfigError, Interrupted
 from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
 from scaledrill.nn.stock import adapt_model
-from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recipe, set_lr
+from scaledrill.optim import build_optimizer, clip_flat, resolve_recipe, set_lr
 from scaledrill.sync import build_sync
 from scaledrill.sync.path import grad_path
 from scaledrill.sync.summary import sync_summary
@@ -35,7 +35,7 @@ from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
 from scaledrill.train import checkpoint
 from scaledrill.train.blame import WorkerBlame
-from scaledrill.train.grads import GradComputer, flatten_params, write_grads
+from scaledrill.train.grads import GradComputer, flatten_params
 from scaledrill.train.memory import check_fits
 from scaledrill.train.precision import Precision
 from scaledrill.train.signals import StopFlag
@@ -137,6 +137,8 @@ class Trainer:
 
         Started here, finished by the returned function: the caller syncs the
         gradient meanwhile, so this small reduce costs no extra round trip."""
+        if self.comm.size == 1:  # nothing to share: the sum over one process is the values themselves
+            return lambda: values
         parts = [torch.tensor(values, dtype=torch.float64)] + [b.detach().reshape(-1).double() for b in buffers]
         shared = torch.cat(parts)
         pending = self.comm.all_reduce_start(shared)
@@ -187,14 +189,14 @@ class Trainer:
             small_sq = float(scalars[1]) / W / S**2
             big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum()) / S**2
 
-        write_grads(average, self.params)
+        self.grads.write_grads(average)  # every .grad is a view of `average`
         layers_due = self._layers_due(step)
         verdict = self.precision.after_reduce(average, [p.grad for p in self.params] if layers_due else None, self.grads.names)
         clip = self.clip_norm
         lr = self.recipe.lr_at(step)
         layers, grad_norm = None, float("nan")
         if verdict.apply:  # else an inf/NaN in the scaled gradient: skip the step (train/precision.py)
-            grad_norm = clip_by_global_norm(self.params, clip)
+            grad_norm = clip_flat(average, clip)  # the .grads are views of `average`: one norm, one scale
             set_lr(self.optimizer, lr)
             before = [p.detach().clone() for p in self.params] if layers_due else None
             self.optimizer.step()

@@ -9,8 +9,12 @@ global token count and never as a mean of micro-batch means.
 - fused: one forward/backward per micro-step over all V·b samples of the process;
   returns [1, n] = Σ over this process's workers of g_w. Ghost batch
   normalization (group = b) keeps BatchNorm statistics per worker.
-- vmap: per-worker gradients with torch.func; returns [V, n]. BatchNorm buffers
-  go in batched (one copy per worker) and come back as their mean.
+- vmap: per-worker gradients; returns [V, n]. When every module holding
+  parameters has a per-worker rule (rows.py: Linear, LayerNorm, Embedding,
+  Conv2d, GhostBatchNorm), the rows come from one fused forward/backward, after
+  the first call has checked them against torch.func.vmap; otherwise by vmap,
+  where BatchNorm buffers go in batched (one copy per worker) and come back as
+  their mean.
 - loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
   The first time vmap fails on a model (recurrent layers, in-place or
   data-dependent code), this run falls back to loop for good and says so once.
@@ -32,6 +36,7 @@ from torch.func import functional_call, grad, vmap
 from scaledrill.errors import ScaledrillError
 from scaledrill.nn.dropout import key_samples
 from scaledrill.tasks.base import forward_loss
+from scaledrill.train.rows import RuleRows, agree, rule_cause
 
 # Modules torch.func.vmap cannot run per worker (their kernels take no batched inputs).
 NO_VMAP = (torch.nn.RNNBase,)
@@ -60,9 +65,14 @@ class GradComputer:
         # integer counters) are the same everywhere and are left alone.
         self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
         self.numel = sum(p.numel() for p in self.params)
+        self.flat = FlatLayout(self.params)
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
+        # Per-worker rows from one fused pass: None when a module has no rule or the first call's check failed.
+        self.rule_cause = rule_cause(model)
+        self.rules = RuleRows(model, self.params, workers_per_proc) if self.rule_cause is None else None
+        self.rules_checked = False
         self.vmap_failure = next((f"{type(m).__name__} has no per-worker (vmap) kernel" for m in model.modules()
                                   if isinstance(m, NO_VMAP)), None)
         self.accum_dtype = None  # dtype the micro-batch gradients are summed in; None = the parameters' (train/precision.py)
@@ -72,12 +82,18 @@ class GradComputer:
 
     # -- fused ---------------------------------------------------------------
     def fused(self, micro: list[dict], scale: float) -> StepGrads:
-        out = self._accumulator(1)
-        views = _views(out[0], self.params)
+        out, views = None, None
         total = 0.0
         for batch in micro:
             value = _sum_loss(self.loss, self.model, batch, scale, self.step)
-            torch._foreach_add_(views, torch.autograd.grad(value, self.params))
+            grads = torch.autograd.grad(value, self.params)
+            if out is None:  # the first micro-step's gradients are the buffer: one copy, no zero fill
+                out = torch.cat([g.reshape(-1) for g in grads]).unsqueeze(0)
+                if self.accum_dtype is not None and out.dtype != self.accum_dtype:
+                    out = out.to(self.accum_dtype)  # train.accum_dtype: the sum of the micro-steps in 16 bits
+                views = self.flat.views(out[0])
+            else:
+                torch._foreach_add_(views, grads)
             total += float(value.detach())
         return StepGrads(out, total)
 
@@ -97,7 +113,39 @@ class GradComputer:
                 named[n].copy_(value.mean(0) if value.is_floating_point() else value[0])
 
     def vmap(self, micro: list[dict], scale: float) -> StepGrads:
-        """Per-worker gradients by torch.func.vmap, or by loop once vmap has failed on this model."""
+        """Per-worker gradients by the rules of rows.py, by torch.func.vmap, or by loop once vmap has failed on this model."""
+        if self.rules is not None and self.rules_checked:
+            rows, total = self.rules.compute(self.model, self._forward_sum(scale), micro, self.accum_dtype or self.params[0].dtype)
+            return StepGrads(rows, total)
+        if self.rules is not None:
+            return self._check_rules(micro, scale)
+        return self._per_worker(micro, scale)
+
+    def _forward_sum(self, scale: float):
+        return lambda batch: _sum_loss(self.loss, self.model, batch, scale, self.step)
+
+    def _check_rules(self, micro: list[dict], scale: float) -> StepGrads:
+        """First call: rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
+        named = dict(self.model.named_buffers())
+        start = {n: b.detach().clone() for n, b in named.items()}
+        try:
+            rows, _ = self.rules.compute(self.model, self._forward_sum(scale), micro, self.accum_dtype or self.params[0].dtype)
+        except ScaledrillError:
+            raise
+        except Exception as err:  # noqa: BLE001 - a model the rules do not fit fails in many ways
+            rows, self.rule_cause = None, f"{type(err).__name__}: {err}"
+        with torch.no_grad():
+            for n, b in named.items():
+                b.copy_(start[n])
+        reference = self._per_worker(micro, scale)
+        if rows is not None and not agree(rows, reference.local, self.params):
+            self.rule_cause = "its rows differ from vmap's (a parameter used outside its module, or samples not along dim 0)"
+        if self.rule_cause is not None:
+            self.rules = None
+        self.rules_checked = True
+        return reference
+
+    def _per_worker(self, micro: list[dict], scale: float) -> StepGrads:
         if self.vmap_failure is not None:
             result = self.loop(micro, scale)
             self.announce_fallback()
@@ -152,7 +200,7 @@ class GradComputer:
             with torch.no_grad():
                 for n, t in start.items():
                     named[n].copy_(t)
-            views = _views(out[v], self.params)
+            views = self.flat.views(out[v])
             for batch in split:
                 one = {k: t[v] for k, t in batch.items()}
                 value = _sum_loss(self.loss, self.model, one, scale, self.step)
@@ -168,20 +216,39 @@ class GradComputer:
     def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:
         return getattr(self, path)(micro, scale)
 
-
-def _views(flat: torch.Tensor, params: list[torch.Tensor]) -> list[torch.Tensor]:
-    """Views of `flat` shaped like each parameter, in order."""
-    views, offset = [], 0
-    for p in params:
-        views.append(flat[offset : offset + p.numel()].view_as(p))
-        offset += p.numel()
-    return views
+    def write_grads(self, flat: torch.Tensor) -> None:
+        """Give every parameter its slice of the averaged flat gradient as `.grad`."""
+        for p, view in zip(self.params, self.flat.views(flat)):
+            p.grad = view
 
 
-def write_grads(flat: torch.Tensor, params: list[torch.Tensor]) -> None:
-    """Give every parameter its slice of the averaged flat gradient as `.grad`."""
-    for p, view in zip(params, _views(flat, params)):
-        p.grad = view
+class FlatLayout:
+    """Where each parameter sits in a flat vector in `model.parameters()` order.
+
+    Worked out once: a view per parameter is then one `as_strided` call (slicing and
+    reshaping cost two calls and their checks, a visible share of a 1 ms step)."""
+
+    def __init__(self, params: list[torch.Tensor]):
+        self.spec, offset = [], 0
+        for p in params:
+            self.spec.append((tuple(p.shape), _contiguous_strides(p.shape), offset))
+            offset += p.numel()
+        self.numel = offset
+
+    def views(self, flat: torch.Tensor) -> list[torch.Tensor]:
+        """Views of the contiguous 1-d `flat` shaped like each parameter, in order."""
+        if flat.dim() != 1 or flat.numel() != self.numel or flat.stride(0) != 1:
+            raise ValueError(f"expected a contiguous vector of {self.numel} values, got shape {tuple(flat.shape)}")
+        base = flat.storage_offset()
+        return [flat.as_strided(shape, strides, base + offset) for shape, strides, offset in self.spec]
+
+
+def _contiguous_strides(shape) -> tuple[int, ...]:
+    strides, step = [], 1
+    for size in reversed(tuple(shape)):
+        strides.append(step)
+        step *= size
+    return tuple(reversed(strides))
 
 
 def flatten_params(params: list[torch.Tensor]) -> torch.Tensor:

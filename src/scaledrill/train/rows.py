@@ -1,0 +1,165 @@
+"""Per-worker gradient rows from ONE forward/backward over the process's V·b samples.
+
+A weight that meets the samples only through its module's forward has, for
+worker v, the gradient Σ over v's samples of that module's per-sample term. From
+the module's saved input x and the gradient g of its output (both from the one
+fused pass), the rows come out per group of samples, as per-example gradients do
+(Goodfellow 2015, "Efficient Per-Example Gradient Computations", arXiv 1510.01799),
+here summed within each worker's b samples:
+- Linear  y = x·Wᵀ + c:   ∂W[v] = Σ_{i∈v} g_iᵀ·x_i (one batched matmul over the V
+  workers, the FLOPs of the big-batch weight gradient), ∂c[v] = Σ_{i∈v} g_i;
+- LayerNorm  y = x̂ ⊙ w + c:   ∂w[v] = Σ_{i∈v} g_i ⊙ x̂_i, ∂c[v] = Σ_{i∈v} g_i;
+- Embedding  y = W[idx]:   ∂W[v] = Σ over v's tokens of g at row idx (padding row 0);
+- Conv2d (groups=1, zero padding):   ∂W[v] = the weight gradient of v's samples alone, all V
+  at once as one grouped convolution, ∂c[v] = Σ g_i;
+- GhostBatchNorm (per-group statistics, groups of b = one worker each)
+  y = x̂ ⊙ w + c:   ∂w[v] = Σ_{i∈v} g_i ⊙ x̂_i, ∂c[v] = Σ_{i∈v} g_i, with x̂
+  recomputed from x by the module's own group statistics.
+Extra dimensions (sequence or spatial positions) are summed with the samples. A module called
+several times (a shared layer) adds the rows of every call.
+
+When: every module that holds parameters is one of these stock classes. A model
+can still break the premise (a parameter also used outside its module, as a tied
+output head is; samples not along dim 0 of a module's input), so the first call
+also runs the vmap path and compares the rows per worker; a mismatch turns the
+rule path off for the run and vmap's rows stand. `GradComputer.vmap` uses this.
+"""
+
+import torch
+from torch import nn
+from torch.nn import functional as F
+
+from scaledrill.nn.ghost_bn import GhostBatchNorm
+
+RULED = (nn.Linear, nn.LayerNorm, nn.Embedding, nn.Conv2d, GhostBatchNorm)
+# Agreement with vmap on the first call, per parameter: |rule - vmap| <= RTOL·max|vmap| + ATOL.
+# Rounding differs between the two (other summation orders); a wrong premise differs by O(1).
+RTOL, ATOL = 1e-3, 1e-12  # common practice for "same up to float rounding" at float32
+
+
+def rule_cause(model: nn.Module) -> str | None:
+    """Why the rule path cannot serve `model` (None: it can, pending the first-call comparison)."""
+    for name, m in model.named_modules():
+        if not any(True for _ in m.parameters(recurse=False)):
+            continue
+        if type(m) not in RULED:
+            return f"{name or 'the model'} ({type(m).__name__}) has no per-worker rule"
+        if isinstance(m, nn.Embedding) and (m.max_norm is not None or m.scale_grad_by_freq or m.sparse):
+            return f"{name} (Embedding) uses max_norm, scale_grad_by_freq or sparse"
+        if isinstance(m, nn.Conv2d) and (m.groups != 1 or m.padding_mode != "zeros" or isinstance(m.padding, str)):
+            return f"{name} (Conv2d) uses groups, a padding mode or a named padding"
+    return None
+
+
+def _linear(m: nn.Linear, x, g, V):
+    xs, gs = x.reshape(V, -1, x.shape[-1]), g.reshape(V, -1, g.shape[-1])
+    rows = {"weight": torch.bmm(gs.transpose(1, 2), xs)}
+    if m.bias is not None:
+        rows["bias"] = gs.sum(1)
+    return rows
+
+
+def _layer_norm(m: nn.LayerNorm, x, g, V):
+    shape = tuple(m.normalized_shape)
+    gs = g.reshape(V, -1, *shape)
+    rows = {}
+    if m.weight is not None:
+        normed = F.layer_norm(x, shape, None, None, m.eps)
+        rows["weight"] = (gs * normed.reshape(V, -1, *shape)).sum(1)
+    if m.bias is not None:
+        rows["bias"] = gs.sum(1)
+    return rows
+
+
+def _embedding(m: nn.Embedding, idx, g, V):
+    num, dim = m.num_embeddings, m.embedding_dim
+    ids = idx.reshape(V, -1)
+    flat = (ids + num * torch.arange(V, device=ids.device).unsqueeze(1)).reshape(-1)
+    rows = torch.zeros(V * num, dim, dtype=g.dtype).index_add_(0, flat, g.reshape(-1, dim)).view(V, num, dim)
+    if m.padding_idx is not None:
+        rows[:, m.padding_idx] = 0
+    return {"weight": rows}
+
+
+def _conv2d(m: nn.Conv2d, x, g, V):
+    """The V workers as the groups of one grouped convolution's weight gradient (what vmap
+    does for a batched convolution weight; 3-5x faster here than unfold and a matmul)."""
+    N, C, O = x.shape[0], x.shape[1], g.shape[1]
+    xs = x.reshape(V, -1, *x.shape[1:]).transpose(0, 1).reshape(N // V, V * C, *x.shape[2:])
+    gs = g.reshape(V, -1, *g.shape[1:]).transpose(0, 1).reshape(N // V, V * O, *g.shape[2:])
+    weight = m.weight.detach().repeat(V, 1, 1, 1)  # its shape tells the kernel the groups' weight shape
+    _, rows, _ = torch.ops.aten.convolution_backward(gs, xs, weight, None, m.stride, m.padding, m.dilation, False,
+                                                     [0, 0], V, [False, True, False])
+    out = {"weight": rows.view(V, *m.weight.shape)}
+    if m.bias is not None:
+        out["bias"] = g.reshape(V, -1, O, g.shape[2:].numel()).sum(dim=(1, 3))
+    return out
+
+
+def _ghost_batch_norm(m: GhostBatchNorm, x, g, V):
+    if m.collective is not None or not m.training:
+        raise ValueError("GhostBatchNorm with global statistics or in eval mode has no per-worker rule")
+    if (x.shape[0] // V) % (m.group_size or x.shape[0]):
+        raise ValueError(f"GhostBatchNorm groups of {m.group_size} samples span several workers")
+    C = m.num_features
+    normed = m.normalized(x).reshape(V, -1, C, x[0].numel() // C)
+    gs = g.reshape(V, -1, C, normed.shape[-1])
+    return {"weight": (gs * normed).sum(dim=(1, 3)), "bias": gs.sum(dim=(1, 3))}
+
+
+RULES = {nn.Linear: _linear, nn.LayerNorm: _layer_norm, nn.Embedding: _embedding, nn.Conv2d: _conv2d,
+         GhostBatchNorm: _ghost_batch_norm}
+
+
+class RuleRows:
+    """The [V, n] rows of one process by the rules above; `slots` map each parameter to its flat range."""
+
+    def __init__(self, model: nn.Module, params: list[torch.Tensor], V: int):
+        self.V = V
+        where, offset = {}, 0
+        for p in params:
+            where[id(p)] = (offset, p.numel())
+            offset += p.numel()
+        self.numel = offset
+        self.modules = [m for m in model.modules() if type(m) in RULES and any(True for _ in m.parameters(recurse=False))]
+        self.slots = {id(m): {k: where[id(p)] for k, p in m.named_parameters(recurse=False)} for m in self.modules}
+
+    def compute(self, model, forward_sum, micro: list[dict], dtype) -> tuple[torch.Tensor, float]:
+        """Rows [V, n] and the summed loss; `forward_sum(batch)` runs the model and returns the scaled loss sum."""
+        out = torch.zeros(self.V, self.numel, dtype=dtype)
+        total = 0.0
+        for batch in micro:
+            calls = []
+
+            def save(module, inputs, output):
+                calls.append((module, inputs[0], output))
+
+            handles = [m.register_forward_hook(save) for m in self.modules]
+            try:
+                value = forward_sum(batch)
+            finally:
+                for h in handles:
+                    h.remove()
+            n = batch["input"].shape[0]
+            if any(x.shape[0] != n or y.shape[0] != n for _, x, y in calls):
+                raise ValueError("a ruled module saw an input whose dim 0 is not the samples")
+            outs = torch.autograd.grad(value, [y for _, _, y in calls], allow_unused=True)
+            for (module, x, _), g in zip(calls, outs):
+                if g is None:
+                    continue
+                for key, rows in RULES[type(module)](module, x.detach(), g, self.V).items():
+                    start, size = self.slots[id(module)][key]
+                    out[:, start : start + size] += rows.reshape(self.V, size)
+            total += float(value.detach())
+        return out, total
+
+
+def agree(rule: torch.Tensor, reference: torch.Tensor, params: list[torch.Tensor]) -> bool:
+    """Do the rule's rows match the reference rows, parameter by parameter, up to rounding?"""
+    offset = 0
+    for p in params:
+        a, b = rule[:, offset : offset + p.numel()], reference[:, offset : offset + p.numel()]
+        offset += p.numel()
+        if p.numel() and float((a - b).abs().max()) > RTOL * float(b.abs().max()) + ATOL:
+            return False
+    return True
