@@ -12,6 +12,7 @@ from conftest import composed
 from scaledrill.commands.report import report_verb
 from scaledrill.errors import ConfigError
 from scaledrill.forecast import CAUTION, forecast_json, project_rungs, validate
+from scaledrill.forecast.project import compare_to_baseline, project_baseline
 from scaledrill.report import find_results
 from scaledrill.telemetry.store import RunStore
 
@@ -248,6 +249,25 @@ def test_forecast_report_marks_cheapest_and_fastest_rows(tmp_path):
     text, page = render(directory, tmp_path)
     assert page.classes.count("pick") == len(picks) >= 1
     assert "65536" in text and "–" in text  # the rung that never reached the target has no cost
+
+
+def test_forecast_report_leads_with_the_baseline_and_compares_every_row_to_it(tmp_path):
+    cluster = validate(composed("forecast", "example"))
+    rungs = [{"global_batch": 1024, "steps_to_target": 1250}, {"global_batch": 8192, "steps_to_target": 160}]
+    rows = project_rungs(cluster, rungs, 2e9, 4e8, None)
+    baseline = project_baseline(cluster, 256, 8, 5000, 2e9, 4e8, None)
+    compare_to_baseline(rows, baseline)
+    directory = tmp_path / "fc"
+    directory.mkdir()
+    doc = forecast_json(cluster, rows, 2e9, 4e8, None, {"x": "y"}, baseline=baseline)
+    (directory / "forecast.json").write_text(json.dumps(doc))
+    text, page = render(directory, tmp_path)
+    assert page.sections["forecast"]["captions"][0] == "Projection per rung, the baseline first"
+    assert "<th>speed-up vs baseline (×)</th>" in text and "<td>baseline</td>" in text
+    fastest = next(r for r in rows if r["fastest"])
+    # speed-up = baseline time / row time, independently recomputed from the two rows' own times
+    assert fastest["speed_up"] == pytest.approx(baseline["time_to_target_s"] / fastest["time_to_target_s"])
+    assert "the speed of the baseline (B=256 on 8 devices)" in text
 
 
 # ------------------------------------------------------------------ a tree of results, errors, the CLI

@@ -259,17 +259,22 @@ def _scaled(seconds: list) -> tuple[str, list]:
     return f"time ({unit})", [None if v is None else v / size for v in seconds]
 
 
-def forecast_verdict(rungs: list[dict], cheapest: int | None, fastest: int | None) -> tuple[bool | None, str, str]:
-    """The cheapest and the fastest rung, each with its cost and its speed-up over the smallest batch."""
-    base = rungs[0] if rungs else None
+def forecast_verdict(rungs: list[dict], cheapest: int | None, fastest: int | None,
+                     baseline: dict | None = None) -> tuple[bool | None, str, str]:
+    """The cheapest and the fastest rung, each with its cost and its speed-up over the baseline
+    (job.baseline's batch on its own devices) or, without one, over the smallest batch."""
+    base = baseline or (rungs[0] if rungs else None)
     if base is None or (cheapest is None and fastest is None):
         return None, "no pick", "No rung reaches the target on this cluster, so there is nothing to price."
+    against = (f"the baseline (B={base['global_batch']} on {base.get('devices')} devices)" if baseline
+               else f"B={base['global_batch']}")  # fmt: skip
 
     def told(i: int) -> str:
         r = rungs[i]
         t, t0 = r.get("time_to_target_s"), base.get("time_to_target_s")
-        speed = f", {number(t0 / t)}× the speed of B={base['global_batch']}" if t and t0 and r is not base else ""
-        return f"B={r['global_batch']} on {r.get('devices')} devices: {duration(t)} to target, cost {number(r.get('cost'))}{speed}"
+        speed = f", {number(t0 / t)}× the speed of {against}" if t and t0 and r is not base else ""
+        cost = f" ({number(r['cost_ratio'])}× its cost)" if baseline and r.get("cost_ratio") is not None else ""
+        return f"B={r['global_batch']} on {r.get('devices')} devices: {duration(t)} to target, cost {number(r.get('cost'))}{speed}{cost}"
 
     if cheapest == fastest:
         return True, f"pick B={rungs[cheapest]['global_batch']}", f"Cheapest and fastest: {told(cheapest)}."
@@ -288,7 +293,8 @@ def forecast_section(directory: Path, source: str) -> Section:
     rungs = doc.get("rungs", [])
     pick = lambda flag: next((i for i, r in enumerate(rungs) if r.get(flag)), None)  # noqa: E731
     cheapest, fastest = pick("cheapest"), pick("fastest")
-    section.good, section.tag, section.summary = forecast_verdict(rungs, cheapest, fastest)
+    baseline = doc.get("baseline")
+    section.good, section.tag, section.summary = forecast_verdict(rungs, cheapest, fastest, baseline)
     section.blocks.insert(0, paragraph(section.summary))
     if rungs:
         panels = [("Step time", *_scaled([r.get("step_s") for r in rungs])),
@@ -298,12 +304,17 @@ def forecast_section(directory: Path, source: str) -> Section:
         section.blocks.append(figure(uri, "Projected step time, time to target and cost per global batch; "
                                      "cheapest and fastest marked"))  # fmt: skip
     times = ("compute_s", "comm_s", "exposed_comm_s", "step_s", "time_to_target_s")
+    ratios = lambda r: (number(r.get("speed_up")), number(r.get("cost_ratio"))) if baseline else ()  # noqa: E731
     rows = [(r.get("global_batch"), r.get("devices"), r.get("steps_to_target"), *(duration(r.get(k)) for k in times),
-             r.get("device_hours"), r.get("cost"), ", ".join(f for f in ("cheapest", "fastest") if r.get(f)))
-            for r in rungs]  # fmt: skip
+             r.get("device_hours"), r.get("cost"), *ratios(r),
+             ", ".join(f for f in ("baseline", "cheapest", "fastest") if r.get(f)))
+            for r in ([baseline] if baseline else []) + rungs]  # fmt: skip
     headers = ("global batch (samples)", "devices", "steps to target", "compute per step", "all-reduce per step",
-               "exposed all-reduce", "step time", "time to target", "device-hours (h)", "cost (price units)", "pick")  # fmt: skip
-    section.blocks.append(table("Projection per rung", headers, rows, ["pick" if r[-1] else "" for r in rows]))
+               "exposed all-reduce", "step time", "time to target", "device-hours (h)", "cost (price units)",
+               *(("speed-up vs baseline (×)", "cost vs baseline (×)") if baseline else ()), "pick")  # fmt: skip
+    classes = ["pick" if r[-1] and r[-1] != "baseline" else "" for r in rows]
+    caption = "Projection per rung, the baseline first" if baseline else "Projection per rung"
+    section.blocks.append(table(caption, headers, rows, classes))
     assumptions = doc.get("assumptions") or {}
     section.blocks.append(heading("Assumptions"))
     if assumptions.get("cluster"):
