@@ -101,3 +101,22 @@ def test_layer_stats_after_one_sgd_step():
     assert stats["1.bias"]["weight_norm"] == 0.0 and stats["1.bias"]["update_ratio"] == 0.0
     assert stats["1.bias"]["update_norm"] > 0
     assert layer_stats([], [], [], []) == {}
+
+
+def test_a_run_that_keeps_firing_writes_one_incident_per_window_and_logs_every_firing(tmp_path):
+    from conftest import make_config
+    from scaledrill.telemetry.monitor import Monitor, StepRecord
+    from scaledrill.telemetry.store import read_events
+
+    cfg = make_config("telemetry.on_trigger=continue", "telemetry.incident.steps=20")
+    monitor = Monitor(cfg, tmp_path, 0, 8, 64, "{}")
+    blamed = []
+    monitor.blame = lambda: blamed.append(1) or {"loss": [0.0]}
+    for step in range(50):  # a NaN loss every step: the non-finite detector fires each time
+        assert monitor.observe(StepRecord(step, float("nan"), 0.1, 1.0, 1.0)) is None  # continue: no stop
+    monitor.close("finished")
+    files = sorted(tmp_path.glob("incident-*.json"))
+    assert [f.name for f in files] == ["incident-0.json", "incident-20.json", "incident-40.json"]
+    assert len(blamed) == 3  # the per-worker rerun only with a record
+    events = [e for e in read_events(tmp_path / "run.sqlite") if e["kind"] == "detector"]
+    assert len(events) == 50 and events[25]["detail"]["incident"].endswith("incident-20.json")

@@ -73,6 +73,7 @@ class Monitor:
         self.config_yaml = config_yaml
         self.last_checkpoint: str | None = None
         self.incidents: list[str] = []
+        self.last_incident: int | None = None  # step of the newest incident record
         self.blame = None  # set by the engine: () -> each worker's loss and gradient norm at the step (collective)
         self.store = None
         self.events = None  # TensorBoard event files, when telemetry.tensorboard is on
@@ -105,9 +106,14 @@ class Monitor:
         if not reasons:
             return None
         reason = "; ".join(reasons)
-        workers = self.blame() if self.blame is not None else None  # every process takes part
+        # A run told to continue may fire every step: one incident record (and one per-worker rerun) per
+        # `incident.steps` steps, each holding that many steps of history; every firing is still an event.
+        due = self.last_incident is None or record.step - self.last_incident >= self.cfg.incident.steps
+        if due:
+            self.last_incident = record.step
+        workers = self.blame() if self.blame is not None and due else None  # every process takes part
         if self.store is not None:
-            incident = self._incident(record.step, reason, workers)
+            incident = self._incident(record.step, reason, workers) if due else self.incidents[-1]
             self.store.log_event(record.step, "detector", {"reason": reason, "incident": incident})
         return reason if self.stop_on_trigger else None
 
