@@ -29,14 +29,13 @@ class QSGD(Stateless):
     def update(self, x, state, rnd):
         V, n = x.shape
         s = self.levels
-        sent = torch.zeros_like(x)
-        for v in range(V):
-            norm = x[v].norm()  # 1.
-            if norm == 0:
-                continue
-            r = x[v].abs() / norm * s  # 2.
-            low = r.floor()
-            u = torch.rand(n, generator=rnd.generator(v), dtype=x.dtype)
-            sent[v] = norm * x[v].sign() * (low + (u < r - low).to(x.dtype)) / s
+        norm = x.norm(dim=1, keepdim=True)  # 1. (bitwise the per-row norm: each row reduces alone)
+        u = torch.empty_like(x)
+        for v, gen in enumerate(rnd.generators()):  # one stream per worker; only the draws stay per row
+            u[v].uniform_(generator=gen)
+        r = x.abs() / norm * s  # 2. (elementwise, so all rows at once equal row by row)
+        low = r.floor()
+        sent = norm * x.sign() * (low + (u < r - low).to(x.dtype)) / s
+        sent.masked_fill_(norm == 0, 0.0)  # a zero vector sends zeros
         bits = 1 + math.ceil(math.log2(s + 1))
         return Out(rnd.mean(sent), sent, math.ceil(n * bits / 8) + 4), state  # 3.
