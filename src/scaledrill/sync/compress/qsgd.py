@@ -33,9 +33,11 @@ class QSGD(Stateless):
         u = torch.empty_like(x)
         for v, gen in enumerate(rnd.generators()):  # one stream per worker; only the draws stay per row
             u[v].uniform_(generator=gen)
-        r = x.abs() / norm * s  # 2. (elementwise, so all rows at once equal row by row)
+        # 2., in place where the old value is not read again (same operations in the same order, so the same bits)
+        r = x.abs().div_(norm).mul_(s)
         low = r.floor()
-        sent = norm * x.sign() * (low + (u < r - low).to(x.dtype)) / s
+        up = u.lt_(r.sub_(low))  # 1.0 where u < r - l
+        sent = x.sign().mul_(norm).mul_(low.add_(up)).div_(s)  # norm · sign(v) · ξ·s / s
         sent.masked_fill_(norm == 0, 0.0)  # a zero vector sends zeros
         bits = 1 + math.ceil(math.log2(s + 1))
         return Out(rnd.mean(sent), sent, math.ceil(n * bits / 8) + 4), state  # 3.
