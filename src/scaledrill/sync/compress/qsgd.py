@@ -27,7 +27,7 @@ class QSGD(Stateless):
     levels: int = 16
 
     def update(self, x, state, rnd):
-        V, n = x.shape
+        n = x.shape[1]
         s = self.levels
         norm = x.norm(dim=1, keepdim=True)  # 1. (bitwise the per-row norm: each row reduces alone)
         u = torch.empty_like(x)
