@@ -33,6 +33,9 @@ class Stateless:
         return Empty()
 
 
+_SCRATCH: list[torch.Generator] = []  # Round.generators' reusable generators
+
+
 @dataclass
 class Round:
     """What one step's compression may use.
@@ -56,8 +59,14 @@ class Round:
         return torch.Generator().manual_seed(mix(self.seed, self.step, self.workers[v]))
 
     def generators(self) -> list[torch.Generator]:
-        """`generator(v)` for every row v, with the seeds hashed in one pass (seeds.py)."""
-        return [torch.Generator().manual_seed(s) for s in mix_rows((self.seed, self.step), self.workers)]
+        """The streams of `generator(v)` for every row v, seeds hashed in one pass (seeds.py).
+
+        They are scratch generators shared by all callers in the process, reseeded here
+        (cheaper than new ones): use them before the next call."""
+        seeds = mix_rows((self.seed, self.step), self.workers)
+        _SCRATCH.extend(torch.Generator() for _ in range(len(seeds) - len(_SCRATCH)))
+        return [gen.manual_seed(s) for gen, s in zip(_SCRATCH, seeds)]
+
 
 
 @dataclass

@@ -38,6 +38,8 @@ class QSGD(Stateless):
         low = r.floor()
         up = u.lt_(r.sub_(low))  # 1.0 where u < r - l
         sent = x.sign().mul_(norm).mul_(low.add_(up)).div_(s)  # norm · sign(v) · ξ·s / s
-        sent.masked_fill_(norm == 0, 0.0)  # a zero vector sends zeros
+        zero = norm == 0
+        if zero.any():  # rare, and a broadcast masked fill costs as much as the rest of a row's arithmetic
+            sent.masked_fill_(zero, 0.0)  # a zero vector sends zeros
         bits = 1 + math.ceil(math.log2(s + 1))
         return Out(rnd.mean(sent), sent, math.ceil(n * bits / 8) + 4), state  # 3.

@@ -39,16 +39,28 @@ def _words(value: int) -> list[int]:
     return out
 
 
+def _hash_constants(calls: int) -> tuple[np.ndarray, np.ndarray]:
+    """The constant hashmix XORs with and the one it multiplies by, for its first `calls` calls, as [calls, 1] columns."""
+    before, const = [], INIT_A
+    for _ in range(calls):
+        before.append(const)
+        const = (const * MULT_A) & MASK32
+    after = [(c * MULT_A) & MASK32 for c in before]
+    return np.array(before, dtype=U32)[:, None], np.array(after, dtype=U32)[:, None]
+
+
+XOR_BY, MUL_BY = _hash_constants(64)  # enough for 16 words of entropy
+
+
 class _Hash:
-    """hashmix with its advancing constant (arrays wrap modulo 2^32)."""
+    """hashmix with its advancing constant; `count` calls at once on the same words give a [count, ...] array."""
 
     def __init__(self):
-        self.const = INIT_A
+        self.calls = 0
 
-    def __call__(self, v: np.ndarray) -> np.ndarray:
-        v = v ^ U32(self.const)
-        self.const = (self.const * MULT_A) & MASK32
-        v = v * U32(self.const)
+    def __call__(self, v: np.ndarray, count: int = 1) -> np.ndarray:
+        at, self.calls = self.calls, self.calls + count
+        v = (v ^ XOR_BY[at : self.calls]) * MUL_BY[at : self.calls]  # arrays wrap modulo 2^32
         return v ^ (v >> U32(16))
 
 
@@ -60,18 +72,17 @@ def _mix(x: np.ndarray, y: np.ndarray) -> np.ndarray:
 def mix_rows(prefix: tuple[int, ...], last) -> list[int]:
     """[mix(*prefix, w) for w in last], in one pass; every w must be < 2**32."""
     last = np.asarray(last, dtype=np.uint64)
-    if last.size and int(last.max()) > MASK32:
+    words = [w for p in prefix for w in _words(int(p))]
+    if (last.size and int(last.max()) > MASK32) or POOL * (POOL + len(words) + 1) > len(XOR_BY):
         return [mix(*prefix, int(w)) for w in last]  # a second word per row: not worth vectorising
-    entropy = [np.full(last.shape, w, dtype=U32) for p in prefix for w in _words(int(p))] + [last.astype(U32)]  # 1.
+    entropy = [np.full(last.shape, w, dtype=U32) for w in words] + [last.astype(U32)]  # 1.
     hashmix, zero = _Hash(), np.zeros(last.shape, dtype=U32)
-    pool = [hashmix(entropy[i] if i < len(entropy) else zero) for i in range(POOL)]  # 2.
-    for src in range(POOL):  # 3.
-        for dst in range(POOL):
-            if src != dst:
-                pool[dst] = _mix(pool[dst], hashmix(pool[src]))
+    pool = np.stack([hashmix(entropy[i] if i < len(entropy) else zero)[0] for i in range(POOL)])  # 2.
+    for src in range(POOL):  # 3. pool[src] stays fixed while it mixes into the other three
+        others = [d for d in range(POOL) if d != src]
+        pool[others] = _mix(pool[others], hashmix(pool[src], len(others)))
     for src in range(POOL, len(entropy)):
-        for dst in range(POOL):
-            pool[dst] = _mix(pool[dst], hashmix(entropy[src]))
+        pool = _mix(pool, hashmix(entropy[src], POOL))
     out, const = [], INIT_B  # 4.
     for i in range(2):
         v = pool[i % POOL] ^ U32(const)
