@@ -239,3 +239,38 @@ def test_a_donated_row_is_averaged_in_place_and_error_feedback_never_donates_its
     fed.reduce(y, range(4), 0, donate=True)
     assert torch.equal(y, x.expand(4, N))  # fidelity reads the caller's rows again: not donated
     assert fed.stats["residual_norm"] == 0.0  # exact leaves nothing behind
+
+
+def test_row_seeds_equal_numpy_seed_sequence():
+    """`mix_rows` hashes all workers at once; numpy.random.SeedSequence row by row is the reference."""
+    import numpy as np
+
+    from scaledrill.sync.compress.seeds import mix_rows
+
+    pick = np.random.default_rng(5)
+    for seed, step in [(0, 0), (3, 1), (2**32 - 1, 7), (2**40 + 5, 2**33), (2**70 + 1, 12345)]:
+        workers = [0, 1, 2**32 - 1] + pick.integers(0, 2**32, size=20).tolist()
+        want = [int(np.random.SeedSequence([seed, step, w]).generate_state(1, np.uint64)[0] >> 1) for w in workers]
+        assert mix_rows((seed, step), workers) == want
+
+
+def test_qsgd_and_randk_rows_equal_each_workers_own_computation():
+    """The vectorised compressors give, to the bit, what each worker computes alone from its own stream."""
+    V, levels, k = 5, 4, 9
+    x = torch.randn(V, N, generator=torch.Generator().manual_seed(2))
+    x[3] = 0.0  # a zero row sends zeros
+    rnd = local_round(11, V, seed=4)
+    qsgd, _ = build({"name": "qsgd", "levels": levels}).update(x, None, rnd)
+    randk, _ = build({"name": "randk", "count": k}).update(x, None, rnd)
+    for v in range(V):
+        norm = x[v].norm()
+        want = torch.zeros(N)
+        if norm != 0:  # the formula of Alistarh et al. 2017, one worker at a time
+            r = x[v].abs() / norm * levels
+            u = torch.rand(N, generator=rnd.generator(v))
+            want = norm * x[v].sign() * (r.floor() + (u < r - r.floor()).float()) / levels
+        assert torch.equal(qsgd.sent[v], want)
+        idx = torch.randperm(N, generator=rnd.generator(v))[:k]
+        want = torch.zeros(N)
+        want[idx] = x[v, idx] * (N / k)
+        assert torch.equal(randk.sent[v], want)

@@ -42,7 +42,8 @@ class ErrorFeedback:
     def update(self, x, state, rnd):
         y = x + state.worker_residual.to(x.dtype)  # 1.
         out, inner = self.inner.update(y, state.inner, replace(rnd, donated=False))  # 2. y is read again in 3.
-        residual = y - out.sent  # 3.
+        shares = out.sent.untyped_storage().data_ptr() == y.untyped_storage().data_ptr()
+        residual = y - out.sent if shares else y.sub_(out.sent)  # 3., in y's memory when the inner sent a tensor of its own
         squares = rnd.sum(torch.linalg.vector_norm(residual, dim=1, keepdim=True).double().square())
         stats = {**out.stats, "residual_norm": float(squares.sqrt())}
         return Out(out.mean, out.sent, out.wire_bytes, stats), FeedbackState(residual, inner)

@@ -13,8 +13,9 @@ worker would really send in the compressed format (values, indices, scales).
 from dataclasses import dataclass, field
 from typing import Any, Callable, Protocol
 
-import numpy as np
 import torch
+
+from scaledrill.sync.compress.seeds import mix, mix_rows
 
 
 @dataclass
@@ -30,6 +31,9 @@ class Stateless:
 
     def init(self, shapes, V, seed, dtype):
         return Empty()
+
+
+_SCRATCH: list[torch.Generator] = []  # Round.generators' reusable generators
 
 
 @dataclass
@@ -54,6 +58,16 @@ class Round:
         """Random stream of row v, from (seed, step, global worker id) only, so never from P."""
         return torch.Generator().manual_seed(mix(self.seed, self.step, self.workers[v]))
 
+    def generators(self) -> list[torch.Generator]:
+        """The streams of `generator(v)` for every row v, seeds hashed in one pass (seeds.py).
+
+        They are scratch generators shared by all callers in the process, reseeded here
+        (cheaper than new ones): use them before the next call."""
+        seeds = mix_rows((self.seed, self.step), self.workers)
+        _SCRATCH.extend(torch.Generator() for _ in range(len(seeds) - len(_SCRATCH)))
+        return [gen.manual_seed(s) for gen, s in zip(_SCRATCH, seeds)]
+
+
 
 @dataclass
 class Out:
@@ -70,11 +84,6 @@ class Compressor(Protocol):
     def init(self, shapes: list[torch.Size], V: int, seed: int, dtype: torch.dtype) -> Any: ...
 
     def update(self, x: torch.Tensor, state: Any, rnd: Round) -> tuple[Out, Any]: ...
-
-
-def mix(*words: int) -> int:
-    """A well-spread 63-bit seed from several non-negative integers."""
-    return int(np.random.SeedSequence([int(w) for w in words]).generate_state(1, np.uint64)[0] >> 1)
 
 
 def dense_bytes(n: int, dtype: torch.dtype) -> int:

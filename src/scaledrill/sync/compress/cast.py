@@ -31,12 +31,17 @@ class Cast:
 
     def update(self, x, state, rnd):
         W = rnd.world
+        last = []  # the rows of the last mean and their narrow copy (the sums never write into their input)
 
         def narrow_mean(t, in_place=False):  # a copy is made anyway
             # 1. divide by W first, 2. cast, 3. sum in the narrow type, 4. cast back
-            return rnd.sum((t / W).to(self.dtype)).to(t.dtype)
+            small = (t / W).to(self.dtype)
+            last[:] = [t, small]
+            return rnd.sum(small).to(t.dtype)
 
         out, state = self.inner.update(x, state, replace(rnd, mean=narrow_mean))
-        sent = (out.sent / W).to(self.dtype).to(x.dtype) * W
+        # what each worker sent, rounded as it travelled: the rows just cast when the inner sends those (Exact does)
+        small = last[1] if last and last[0] is out.sent else (out.sent / W).to(self.dtype)
+        sent = small.to(x.dtype) * W
         shrink = torch.empty((), dtype=self.dtype).element_size() / x.element_size()
         return Out(out.mean, sent, out.wire_bytes * shrink, out.stats), state

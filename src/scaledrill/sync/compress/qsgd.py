@@ -27,16 +27,19 @@ class QSGD(Stateless):
     levels: int = 16
 
     def update(self, x, state, rnd):
-        V, n = x.shape
+        n = x.shape[1]
         s = self.levels
-        sent = torch.zeros_like(x)
-        for v in range(V):
-            norm = x[v].norm()  # 1.
-            if norm == 0:
-                continue
-            r = x[v].abs() / norm * s  # 2.
-            low = r.floor()
-            u = torch.rand(n, generator=rnd.generator(v), dtype=x.dtype)
-            sent[v] = norm * x[v].sign() * (low + (u < r - low).to(x.dtype)) / s
+        norm = x.norm(dim=1, keepdim=True)  # 1. (bitwise the per-row norm: each row reduces alone)
+        u = torch.empty_like(x)
+        for v, gen in enumerate(rnd.generators()):  # one stream per worker; only the draws stay per row
+            u[v].uniform_(generator=gen)
+        # 2., in place where the old value is not read again (same operations in the same order, so the same bits)
+        r = x.abs().div_(norm).mul_(s)
+        low = r.floor()
+        up = u.lt_(r.sub_(low))  # 1.0 where u < r - l
+        sent = x.sign().mul_(norm).mul_(low.add_(up)).div_(s)  # norm · sign(v) · ξ·s / s
+        zero = norm == 0
+        if zero.any():  # rare, and a broadcast masked fill costs as much as the rest of a row's arithmetic
+            sent.masked_fill_(zero, 0.0)  # a zero vector sends zeros
         bits = 1 + math.ceil(math.log2(s + 1))
         return Out(rnd.mean(sent), sent, math.ceil(n * bits / 8) + 4), state  # 3.

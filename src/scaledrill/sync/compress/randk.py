@@ -30,8 +30,9 @@ class RandK(Stateless):
         n = x.shape[1]
         k = keep_count(n, self.fraction, self.count)
         scale = n / k if self.unbiased else 1.0
-        sent = torch.zeros_like(x)
-        for v in range(x.shape[0]):
-            idx = torch.randperm(n, generator=rnd.generator(v))[:k]  # 2.
-            sent[v, idx] = x[v, idx] * scale
+        perms = torch.empty(x.shape, dtype=torch.int64)
+        for v, gen in enumerate(rnd.generators()):
+            torch.randperm(n, generator=gen, out=perms[v])  # 2. the first k of each row's permutation
+        idx = perms[:, :k]
+        sent = torch.zeros_like(x).scatter_(1, idx, x.gather(1, idx) * scale)  # distinct indices: one scatter for all rows
         return Out(rnd.mean(sent), sent, dense_bytes(k, x.dtype)), state  # 3.

@@ -20,5 +20,5 @@ class ScaledSign(Stateless):
     def update(self, x, state, rnd):
         n = x.shape[1]
         scale = x.abs().sum(dim=1, keepdim=True) / n  # 1.
-        sent = scale * x.sign()
+        sent = x.sign().mul_(scale)  # scale · sign(v), without a second temporary
         return Out(rnd.mean(sent), sent, math.ceil(n / 8) + 4), state  # 2.
