@@ -30,7 +30,7 @@ import threading
 import time
 from pathlib import Path
 
-from scaledrill.dist.procs import kill_tree, rank_pids, send
+from scaledrill.dist.procs import kill_tree, rank_pids, rank_processes, send, wait_gone
 from scaledrill.dist.rank import describe_status, error_file, read_error
 from scaledrill.errors import INTERRUPT_STATUSES, ConfigError, Interrupted, WorkerFailed, error_for_status
 
@@ -167,7 +167,7 @@ class Mpi:
         forking = Path(path).parent / "mpiexec.gforker"
         if is_loopback(address) and forking.exists():
             path = str(forking)  # one machine: fork the ranks, no proxy daemon listening on every interface
-        self.expected = procs
+        self.expected, self.run_dir = procs, Path(run_dir)
         self.proc = subprocess.Popen([path, "-n", str(procs), *_worker_command(run_dir, job)], env=env, start_new_session=True)
         self.known: dict[int, int] = {}
 
@@ -186,11 +186,12 @@ class Mpi:
             pass
 
     def kill(self) -> None:
-        if self.proc.poll() is None:
-            kill_tree(self.proc.pid)
-        for pid in self.known.values():  # hydra gives each rank a session of its own
-            send(pid, signal.SIGKILL)
+        hit = kill_tree(self.proc.pid) if self.proc.poll() is None else []
+        for pid in rank_processes(self.run_dir):  # hydra gives each rank a session of its own, and a
+            send(pid, signal.SIGKILL)  # rank whose guard died first hangs below init
+            hit.append(pid)
         self.proc.wait()
+        wait_gone(hit)  # none of them outlives the launcher's return
 
 
 def clear_reports(run_dir: Path) -> None:

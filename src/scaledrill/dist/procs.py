@@ -10,6 +10,7 @@ environment for the rank the process manager gave it.
 import ctypes
 import os
 import signal
+import time
 from pathlib import Path
 
 RANK_ENTRY = b"scaledrill.dist.rank"
@@ -64,6 +65,22 @@ def rank_pids(root: int) -> dict[int, int]:
     return out
 
 
+def rank_processes(run_dir) -> list[int]:
+    """Every live rank-entry process of the run in `run_dir`, wherever it hangs in the tree: a rank
+    whose guard died first is re-parented to init, out of reach of a walk from the launcher."""
+    wanted = [RANK_ENTRY, str(run_dir).encode()]
+    out = []
+    for entry in Path("/proc").iterdir():
+        if entry.name.isdigit() and int(entry.name) != os.getpid():
+            try:
+                argv = (entry / "cmdline").read_bytes().split(b"\0")
+            except OSError:
+                continue
+            if RANK_ENTRY in argv and wanted[1] in argv and _alive(int(entry.name)):
+                out.append(int(entry.name))
+    return out
+
+
 def send(pid: int, sig: int) -> None:
     try:
         os.kill(pid, sig)
@@ -71,11 +88,29 @@ def send(pid: int, sig: int) -> None:
         pass
 
 
-def kill_tree(root: int) -> None:
-    """SIGKILL `root` and everything below it (children first, so none is re-parented and missed)."""
-    for pid in reversed(descendants(root)):
+def kill_tree(root: int) -> list[int]:
+    """SIGKILL `root` and everything below it (children first, so none is re-parented and missed); the pids hit."""
+    hit = descendants(root)
+    for pid in reversed(hit):
         send(pid, signal.SIGKILL)
     send(root, signal.SIGKILL)
+    return [*hit, root]
+
+
+def _alive(pid: int) -> bool:
+    try:
+        state = Path(f"/proc/{pid}/stat").read_text().rsplit(")", 1)[1].split()[0]
+    except OSError:
+        return False
+    return state != "Z"
+
+
+def wait_gone(pids: list[int], timeout_s: float = 10.0) -> None:
+    """Wait until none of `pids` runs any more: a SIGKILL is only a request, and a process
+    that is not our child cannot be waited for."""
+    deadline = time.monotonic() + timeout_s
+    while any(_alive(pid) for pid in pids) and time.monotonic() < deadline:
+        time.sleep(0.02)
 
 
 def die_with_parent(sig: int = signal.SIGTERM) -> None:
