@@ -191,3 +191,45 @@ def test_bitwise_digest_is_identical_for_procs_1_2_4_8_with_default_threads(tmp_
         assert proc.returncode == 0, out
     digests = {p: json.loads((tmp_path / f"p{p}" / "summary.json").read_text())["params_digest"] for p in started}
     assert len(set(digests.values())) == 1, digests
+
+
+KINKED = ("task=custom", "task.model._target_=tests.zoo.ReluTransformerStack", "+task.model.classes=2",
+          "task.data._target_=tests.zoo.SignOfSum", "layout.workers=4", "layout.accum=2", "train.seed=0")
+
+
+def test_relu_kinks_meeting_float32_rounding_are_no_false_alarm(tmp_path):
+    # Stock encoder layers with ReLU and dropout: the float32 true batch itself lands ~1e-3 relative
+    # from float64 in the first layers (seed 0 on this data; the rule alone called every path "DIFFERS").
+    cfg = make_config(*KINKED, "check.paths=[accumulation,fused]", name="check")
+    result = check_verb(cfg, tmp_path)
+    assert result.exit_code == 0, json.dumps(result.report["paths"], indent=1)
+    assert "encoder.layers.0.linear1" in result.report["reference"]["floor"]
+    first = {x["layer"]: x for x in result.report["paths"][0]["layers"]}["encoder.layers.0.linear1.weight"]
+    assert first["max_rel"] > 1e-4  # far beyond the rule's ~32·2^-24·√128 ≈ 2e-5: the floor decided
+
+
+def test_the_rounding_floor_still_catches_a_mistake_on_the_same_model(tmp_path):
+    cfg = make_config(*KINKED, "+check.step._target_=tests.fixtures_check.clip_each_micro_step",
+                      "check.paths=[accumulation,fused]", name="check")
+    assert check_verb(cfg, tmp_path).exit_code == 1
+
+
+def test_rounding_floor_is_four_times_the_float32_distance_per_module():
+    from scaledrill.check.tolerance import compare, floor_from
+    from scaledrill.check.trajectory import Trajectory
+
+    one = torch.ones(2, dtype=torch.float64)
+
+    def vec(values):
+        return torch.tensor(values, dtype=torch.float64)
+
+    names = ["a.weight", "a.bias", "b.weight"]
+    ref = Trajectory(names, [one, one, one], [[one] * 3])
+    low = Trajectory(names, [vec([1.0, 1.001]), one, one], [[vec([1.0, 1.01]), one, one]])
+    tol = floor_from(Tolerance(2.0**-24, 128), low, ref)
+    assert tol.grad_floor["a"] == pytest.approx(4e-3, rel=1e-6) and tol.grad_floor["b"] == 0.0
+    assert tol.param_floor == pytest.approx((4e-2,), rel=1e-6)
+    inside = Trajectory(names, [vec([1.0, 1.0039]), vec([1.0039, 1.0]), one], [[one] * 3])
+    outside = Trajectory(names, [one, one, vec([1.0, 1.001])], [[one] * 3])
+    assert compare("p", inside, ref, tol).ok  # module a: up to 4x its own float32 distance, weight and bias alike
+    assert not compare("p", outside, ref, tol).ok  # module b had no such distance: the rule holds

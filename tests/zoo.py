@@ -119,3 +119,33 @@ class ReturnsTuple(Raises):
 class WrongShape(Raises):
     def forward(self, x):
         return self.lin(x.flatten(1))[:, :3].sum(dim=0)
+
+
+class ReluTransformerStack(nn.Module):
+    """The 8 image rows as tokens through two stock encoder layers with ReLU and dropout:
+    rounding meets the ReLU kinks, so float32 moves the first layers by ~1e-3 from float64."""
+
+    def __init__(self, dim: int = 32, dropout: float = 0.1, classes: int = 10):
+        super().__init__()
+        self.embed = nn.Linear(8, dim)
+        layer = nn.TransformerEncoderLayer(dim, 4, 2 * dim, dropout=dropout, batch_first=True)
+        self.encoder = nn.TransformerEncoder(layer, 2, enable_nested_tensor=False)
+        self.head = nn.Linear(dim, classes)
+
+    def forward(self, x):
+        return self.head(self.encoder(self.embed(x.reshape(x.shape[0], -1, 8))).mean(dim=1))
+
+
+class SignOfSum(torch.utils.data.Dataset):
+    """Gaussian sequences of 12 tokens of 8 features; the label is the sign of their sum."""
+
+    def __init__(self, n: int = 1024, seed: int = 0):
+        g = torch.Generator().manual_seed(seed)
+        self.x = torch.randn(n, 12, 8, generator=g)
+        self.y = (self.x.sum((1, 2)) > 0).long()
+
+    def __len__(self):
+        return len(self.y)
+
+    def __getitem__(self, i):
+        return self.x[i], self.y[i]

@@ -24,6 +24,8 @@ Checks, in order; each explains some of the failing paths and hands the rest on:
    else a real difference no check here names.
 """
 
+from dataclasses import replace
+
 import torch
 
 from scaledrill.check.findings import Finding
@@ -210,7 +212,7 @@ class Diagnosis:
             spread = self.runs[name].worker_spread
             if spread > 0:
                 detail = f"; the workers' (or ranks') copies differ from each other by up to {spread:.3g}"
-            plain = Tolerance(self.tol.unit, self.tol.batch, 1.0)
+            plain = replace(self.tol, scale=1.0)
             if self.tol.scale < 1 and compare(name, self.runs[name], self.ref, plain).ok:
                 self._explained([name], Finding(
                     "the tolerance is set below float rounding",
@@ -220,7 +222,7 @@ class Diagnosis:
                 continue
             if cfg.train.dtype == "float32" and self.runner.ref_dtype == torch.float64 and not name.startswith("processes:"):
                 wide = self.runner.run(name, cfg=variant(cfg, **{"train.dtype": "float64"}), model_hook=self.hook)
-                wide_tol = Tolerance(2.0**-53, self.tol.batch, self.tol.scale)
+                wide_tol = self.tol.without_floor(unit=2.0**-53)
                 if compare(name, wide, self.ref, wide_tol).ok:
                     self._explained([name], Finding(
                         "float32 rounding larger than the tolerance rule allows",

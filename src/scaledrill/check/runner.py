@@ -9,6 +9,8 @@ the BatchNorm statistics the check compares (batchnorm.py).
 
 from pathlib import Path
 
+import torch
+
 from scaledrill.check.batchnorm import has_batchnorm, path_batchnorm, unserved
 from scaledrill.check.paths import GRAD_PATHS, accumulation, variant, virtual
 from scaledrill.check.processes import available, process_count, run_processes
@@ -73,8 +75,13 @@ class Runner:
             else:
                 run.append(name)
 
-    def reference(self, batchnorm: str | None = None, model_hook=None) -> Trajectory:
-        return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook, self.ref_dtype)
+    def reference(self, batchnorm: str | None = None, model_hook=None, dtype=None) -> Trajectory:
+        return reference(self.cfg, self.settings.steps, batchnorm or self.settings.batchnorm, model_hook, dtype or self.ref_dtype)
+
+    def rounds_coarser(self) -> bool:
+        """Whether the paths compute in float32 while the reference is float64 (the case of the rounding floor)."""
+        train = self.cfg.train
+        return self.ref_dtype == torch.float64 and train.dtype == "float32" and train.precision == "fp32"
 
     def run(self, name: str, cfg=None, model_hook=None) -> Trajectory:
         given, steps = cfg or self.cfg, self.settings.steps

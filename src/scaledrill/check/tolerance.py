@@ -21,10 +21,19 @@ layer followed by BatchNorm has a gradient of exactly 0 in exact arithmetic, a
 cancellation of terms as large as the weight's, so its rounding is the weight's.
 Parameters move by a learning rate times gradients whose
 errors add up step after step, so their tolerance grows linearly with t.
+
+Rounding floor. The rule assumes the loss is smooth. A kink (ReLU, max-pooling, a
+dropout mask times a ReLU) turns a rounding-sized change of a pre-activation near 0
+into a changed derivative, so a stock model can move by 10⁻³ relative between
+float32 and float64 with nothing wrong in the plumbing. So where the paths compute
+in float32 and the reference in float64, the check also computes the true batch in
+float32 (same code, same samples, no engine) and takes F = 4 times how far that moves
+from float64, per module and per step, as the least tolerance (`floor_from`). F is our
+own margin: a path rounds in another order and may cross other kinks, of the same size.
 """
 
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 from scaledrill.layout import Layout
 
@@ -76,11 +85,26 @@ class PathResult:
         }
 
 
+FLOOR = 4.0  # F: the least tolerance is F times the float32 true batch's own distance from float64
+
+
 @dataclass(frozen=True)
 class Tolerance:
     unit: float  # u
     batch: int  # B
     scale: float = 1.0  # check.tolerance_scale
+    grad_floor: dict = field(default_factory=dict)  # module -> least gradient tolerance (rounding floor)
+    param_floor: tuple = ()  # step t-1 -> least parameter tolerance
+
+    def grad_bound(self, module: str, magnitude: float) -> float:
+        return max(self(magnitude), self.grad_floor.get(module, 0.0) * self.scale)
+
+    def param_bound(self, step: int, magnitude: float) -> float:
+        floor = self.param_floor[step - 1] if step <= len(self.param_floor) else 0.0
+        return max(self(magnitude, steps=step), floor * self.scale)
+
+    def without_floor(self, **changes) -> "Tolerance":
+        return replace(self, grad_floor={}, param_floor=(), **changes)
 
     @classmethod
     def for_run(cls, cfg, scale: float) -> "Tolerance":
@@ -105,7 +129,8 @@ def compare_grads(names, grads, ref, tol: Tolerance) -> list[LayerResult]:
     for name, g, r in zip(names, grads, ref):
         diff = float((g - r).abs().max())
         size = float(r.abs().max())
-        bound = tol(scale[name.rpartition(".")[0]])
+        owner = name.rpartition(".")[0]
+        bound = tol.grad_bound(owner, scale[owner])
         rel = diff / size if size > 0 else (0.0 if diff == 0 else math.inf)
         out.append(LayerResult(name, diff, rel, bound, diff <= bound))
     return out
@@ -116,7 +141,7 @@ def compare_params(params, ref, tol: Tolerance) -> TrajectoryResult:
     worst, worst_bound, first_bad = 0.0, 0.0, None
     for t, (mine, theirs) in enumerate(zip(params, ref), start=1):
         diff = max(float((a - b).abs().max()) for a, b in zip(mine, theirs))
-        bound = tol(max(float(b.abs().max()) for b in theirs), steps=t)
+        bound = tol.param_bound(t, max(float(b.abs().max()) for b in theirs))
         if diff > bound and first_bad is None:
             first_bad = t
         worst, worst_bound = max(worst, diff), bound
@@ -126,3 +151,24 @@ def compare_params(params, ref, tol: Tolerance) -> TrajectoryResult:
 def compare(name: str, run, ref, tol: Tolerance) -> PathResult:
     """PathResult of Trajectory `run` against the reference Trajectory `ref`."""
     return PathResult(name, compare_grads(run.names, run.grads, ref.grads, tol), compare_params(run.params, ref.params, tol))
+
+
+def floor_from(tol: Tolerance, low, ref) -> Tolerance:
+    """`tol` with the rounding floor measured by `low`, the true batch in the paths' dtype, against `ref`."""
+    grad = {}
+    for name, a, b in zip(ref.names, low.grads, ref.grads):
+        owner = name.rpartition(".")[0]
+        grad[owner] = max(grad.get(owner, 0.0), FLOOR * float((a - b).abs().max()))
+    steps = tuple(FLOOR * max(float((a - b).abs().max()) for a, b in zip(mine, theirs)) for mine, theirs in zip(low.params, ref.params))
+    return replace(tol, grad_floor=grad, param_floor=steps)
+
+
+def floor_note(tol: Tolerance, ref) -> str:
+    """One line on the modules whose rounding floor exceeds the rule (empty when none does)."""
+    scale = _module_scale(ref.names, ref.grads)
+    raised = [m for m, f in tol.grad_floor.items() if f * tol.scale > tol(scale.get(m, 0.0))]
+    if not raised:
+        return ""
+    shown = ", ".join(raised[:6]) + (f" and {len(raised) - 6} more" if len(raised) > 6 else "")
+    return (f"rounding floor: the true batch computed in float32 moves {shown} further from float64 than the rule allows "
+            f"(a kink such as ReLU meets rounding); there the tolerance is {FLOOR:g}x that distance")

@@ -2,7 +2,9 @@
 
 1. validate the recipe and the `check:` node, and plan the paths: which can serve
    check.batchnorm (batchnorm.py), which run here (ConfigError, exit 2, names the key);
-2. compute the float64 reference trajectory of the true batch (reference.py);
+2. compute the float64 reference trajectory of the true batch (reference.py), and
+   where the paths compute in float32 the same in float32, whose distance from float64
+   is the least tolerance (the rounding floor, tolerance.py);
 3. run each path (runner.py) from the same parameters on the same global batches;
 4. compare the first step's averaged gradient per layer and the N-step parameter
    trajectory with rounding-derived tolerances (tolerance.py);
@@ -20,7 +22,7 @@ from scaledrill.check import output
 from scaledrill.check.diagnose import diagnose
 from scaledrill.check.runner import Runner
 from scaledrill.check.settings import read_settings
-from scaledrill.check.tolerance import UNIT_ROUNDOFF, Tolerance, compare
+from scaledrill.check.tolerance import UNIT_ROUNDOFF, Tolerance, compare, floor_from, floor_note
 from scaledrill.config.validate import validate_run
 
 
@@ -54,6 +56,11 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
         print(runner.model_note + ("; BatchNorm in the reference only (train.convert_batchnorm=false keeps the paths' stock BatchNorm)" if kept else ""))
 
     ref = runner.reference()  # 2.
+    if runner.rounds_coarser():  # the model's own float32 rounding sets the least tolerance (tolerance.py)
+        tol = floor_from(tol, runner.reference(dtype=torch.float32), ref)
+        if note := floor_note(tol, ref):
+            print(note)
+            reference["floor"] = note
     runs = {name: runner.run(name) for name in plan}  # 3.
     results = [compare(name, traj, ref, tol) for name, traj in runs.items()]  # 4.
     failing = [r for r in results if not r.ok]
