@@ -11,6 +11,7 @@ needs every path and layout to draw the same masks to exit 0.
 
 import copy
 import json
+import math
 import os
 import subprocess
 
@@ -166,6 +167,16 @@ def test_failing_user_model_is_a_config_error(name, words):
     with pytest.raises(ConfigError) as err:
         trainer.step()
     assert err.value.key == "task.model._target_" and words in str(err.value) and f"tests.zoo.{name}" in str(err.value)
+
+
+def test_a_layer_without_a_16_bit_kernel_names_the_precision_not_the_model():
+    bf16 = trainer_for("RowsLSTM", "train.precision=bf16")
+    assert math.isfinite(bf16.step().loss)  # bf16 autocast has an LSTM kernel on CPU
+    fp16 = trainer_for("RowsLSTM", "train.precision=fp16")
+    with pytest.raises(ConfigError) as err:
+        fp16.step()
+    assert err.value.key == "train.precision" and "tests.zoo.RowsLSTM" in str(err.value)
+    assert "runs in full precision" in str(err.value) and "try train.precision=bf16" in str(err.value)
 
 
 def test_failing_user_model_exits_2_on_local_check_and_gloo_run(tmp_path):

@@ -149,3 +149,16 @@ class SignOfSum(torch.utils.data.Dataset):
 
     def __getitem__(self, i):
         return self.x[i], self.y[i]
+
+
+class RowsLSTM(nn.Module):
+    """The 8 image rows through a stock LSTM: torch on CPU has a bf16 kernel for it but no fp16 one."""
+
+    def __init__(self):
+        super().__init__()
+        self.lstm = nn.LSTM(8, 16, batch_first=True)
+        self.head = nn.Linear(16, 10)
+
+    def forward(self, x):
+        out, _ = self.lstm(x.reshape(x.shape[0], 8, 8))
+        return self.head(out[:, -1])

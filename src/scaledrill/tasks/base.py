@@ -64,15 +64,36 @@ def target_name(obj) -> str:
     return f"{type(obj).__module__}.{type(obj).__qualname__}"
 
 
+def _forward_error(model, err: Exception, forward) -> ConfigError:
+    """The ConfigError for a forward that raised; under autocast it names train.precision when the
+    same forward runs in full precision (torch's CPU kernels lack some 16-bit layers, e.g. fp16 LSTM)."""
+    said = f"the forward pass of {target_name(model)} raised {type(err).__name__}: {err}"
+    if torch.is_autocast_enabled("cpu"):
+        dtype = str(torch.get_autocast_dtype("cpu")).removeprefix("torch.")
+        try:
+            with torch.no_grad(), torch.autocast("cpu", enabled=False):
+                forward()
+        except Exception:  # noqa: BLE001 - broken in any precision: the model's own error
+            return ConfigError("task.model._target_", said)
+        precision = {"float16": "fp16", "bfloat16": "bf16"}.get(dtype, dtype)
+        other = "bf16" if precision == "fp16" else "fp32"
+        return ConfigError("train.precision", f"the forward pass of {target_name(model)} fails under autocast to {dtype} "
+                           f"but runs in full precision: torch on this CPU has no {dtype} kernel for one of its layers "
+                           f"({type(err).__name__}: {str(err).splitlines()[0][:160]}); try train.precision={other}", precision)
+    return ConfigError("task.model._target_", said)
+
+
 def forward_loss(model, loss, batch: dict, call=None) -> torch.Tensor:
     """loss(model(batch["input"]), batch), with a user's failing model or loss named as a ConfigError.
 
     `call(input)` replaces `model(input)` (e.g. a functional call of the same model)."""
+    def forward():
+        return model(batch["input"]) if call is None else call(batch["input"])
+
     try:
-        out = model(batch["input"]) if call is None else call(batch["input"])
+        out = forward()
     except Exception as err:  # noqa: BLE001 - any failure of user code is reported, not traced back
-        raise ConfigError("task.model._target_", f"the forward pass of {target_name(model)} raised "
-                          f"{type(err).__name__}: {err}") from None
+        raise _forward_error(model, err, forward) from None
     if not isinstance(out, torch.Tensor):
         raise ConfigError("task.model._target_", f"the forward pass of {target_name(model)} returned a "
                           f"{type(out).__name__}; the loss needs one tensor (return e.g. the logits only)")
