@@ -18,9 +18,8 @@ from dataclasses import dataclass
 
 from omegaconf import OmegaConf
 
-from scaledrill.config.validate import validate_run
+from scaledrill.config.validate import validate_run, validated_layout
 from scaledrill.errors import ConfigError, is_number, is_whole
-from scaledrill.layout import Layout
 from scaledrill.train.run import PROCS_PER_CORE
 
 GROWTHS = ("workers", "accum")  # ladder.grow: which factor of B = W·b·k grows
@@ -95,7 +94,7 @@ def batches_of(cfg) -> list[int]:
             raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
         return sorted(batches)
     count = _whole(node, "rungs")
-    return [Layout.from_config(cfg.layout).global_batch * 2**i for i in range(count)]
+    return [validated_layout(cfg.layout).global_batch * 2**i for i in range(count)]
 
 
 def layout_of(cfg, grow: str, batch: int) -> tuple[int, int]:
