@@ -92,6 +92,7 @@ LAYOUT: dict[str, Rule] = {
     "micro_batch": POSITIVE_WHOLE,
     "accum": POSITIVE_WHOLE,
     "backend": (lambda v: v in BACKENDS, f"must be one of {', '.join(BACKENDS)}"),
+    "port": (lambda v: v is None or (is_whole(v) and 0 < v < 65536), "must be a port number from 1 to 65535, or null for a free one"),
 }
 
 
@@ -406,3 +407,26 @@ def check_check(cfg) -> None:
     if cfg.sync.name != "exact":
         raise ConfigError("sync.name", "check compares exact averaging with the true batch; a lossy compressor never matches it", cfg.sync.name)
     apply("check", node, {"paths": _names(CHECK_PATHS), "backends": _names(CHECK_BACKENDS)})
+
+
+# ----------------------------------------------------------------------------------------- replay, adopt
+
+def check_replay(node) -> None:
+    """The `replay` keys that stand alone (replay.steps is judged against the checkpoint's step, in commands/replay.py)."""
+    if OmegaConf.is_missing(node, "from") or node.get("from") is None:
+        raise ConfigError("replay.from", "is required: a checkpoint file or a run directory")
+    apply("replay", node, {"departure_rtol": (lambda v: is_number(v) and v >= 0, "must be a number >= 0")})
+
+
+def check_adopt(node) -> None:
+    if OmegaConf.is_missing(node, "from") or not node.get("from"):
+        raise ConfigError("adopt.from", "is required: the checkpoint file to adopt")
+    step = None if OmegaConf.is_missing(node, "step") else node.get("step")
+    if not (is_whole(step) and step >= 0):
+        raise ConfigError("adopt.step", "must be the whole number of optimizer steps the checkpoint was taken after", step)
+
+
+def check_adopted_length(step: int, train) -> None:
+    """The adopted run continues from adopt.step, so train.steps must lie past it."""
+    if step >= train.steps:
+        raise ConfigError("train.steps", f"must exceed adopt.step={step}: the run continues from there", train.steps)
