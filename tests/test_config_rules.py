@@ -82,6 +82,36 @@ def test_a_bad_check_setting_names_its_key(overrides, key):
     assert err.value.key == key
 
 
+@pytest.mark.parametrize("overrides, key", [
+    (["ladder.grow=both"], "ladder.grow"),
+    (["ladder.goal.reached_when=under"], "ladder.goal.reached_when"),
+    (["ladder.goal.value=inf"], "ladder.goal.value"),
+    (["ladder.check_every=0"], "ladder.check_every"),
+    (["ladder.rungs=0"], "ladder.rungs"),
+    (["ladder.batches=[64,64]"], "ladder.batches"),
+    (["ladder.max_steps=0"], "ladder.max_steps"),
+    (["ladder.search.lo=2", "ladder.search.hi=1"], "ladder.search.hi"),  # hi must exceed lo
+    (["ladder.search.reduction=1"], "ladder.search.reduction"),
+    (["ladder.search.explode=0"], "ladder.search.explode"),
+])
+def test_a_bad_ladder_setting_names_its_key(overrides, key):
+    cfg = make_config(*overrides, name="ladder")
+    with pytest.raises(ConfigError) as err:
+        rules.check_ladder(cfg)
+        rules.check_search(cfg.ladder.search)
+    assert err.value.key == key
+
+
+@pytest.mark.parametrize("verb, overrides, key", [
+    ("replay", ["replay.from=somewhere", "replay.departure_rtol=-1"], "replay.departure_rtol"),
+    ("adopt", ["adopt.from=model.pt", "adopt.step=-1"], "adopt.step"),
+])
+def test_a_bad_replay_or_adopt_setting_names_its_key(verb, overrides, key):
+    with pytest.raises(ConfigError) as err:
+        getattr(rules, f"check_{verb}")(make_config(*overrides, name=verb)[verb])
+    assert err.value.key == key
+
+
 def test_the_rule_texts_are_the_ones_users_read():
     def message(*overrides):
         with pytest.raises(ConfigError) as err:
@@ -128,18 +158,22 @@ def _declared(cfg, dotted: str) -> bool:
     return True
 
 
-@pytest.mark.parametrize("group, table, overrides", [
-    ("layout", rules.LAYOUT, []),
-    ("train", rules.TRAIN, []),
-    ("optim", rules.OPTIM, []),
-    *[("optim", t, [f"optim={name}"]) for name, t in rules.OPTIM_BY_NAME.items()],
-    ("schedule", rules.SCHEDULE, []),
-    *[("schedule", t, [f"schedule={name}"]) for name, t in rules.SCHEDULE_BY_NAME.items()],
-    ("telemetry", rules.TELEMETRY, []),
-    ("job", rules.JOB, []),
+@pytest.mark.parametrize("group, table, overrides, verb", [
+    ("layout", rules.LAYOUT, [], "run"),
+    ("train", rules.TRAIN, [], "run"),
+    ("optim", rules.OPTIM, [], "run"),
+    *[("optim", t, [f"optim={name}"], "run") for name, t in rules.OPTIM_BY_NAME.items()],
+    ("schedule", rules.SCHEDULE, [], "run"),
+    *[("schedule", t, [f"schedule={name}"], "run") for name, t in rules.SCHEDULE_BY_NAME.items()],
+    ("telemetry", rules.TELEMETRY, [], "run"),
+    ("job", rules.JOB, [], "run"),
+    ("check", rules.CHECK, [], "check"),
+    ("ladder", rules.LADDER, [], "ladder"),
+    ("ladder", {f"goal.{key}": rule for key, rule in rules.GOAL.items()}, [], "ladder"),
+    ("ladder", {f"search.{key}": rule for key, rule in rules.LADDER_SEARCH.items()}, [], "ladder"),
 ])
-def test_every_rule_names_a_key_the_schema_declares(group, table, overrides):
-    cfg = make_config(*overrides)[group]
+def test_every_rule_names_a_key_the_schema_declares(group, table, overrides, verb):
+    cfg = make_config(*overrides, name=verb)[group]
     assert [key for key in table if not _declared(cfg, key)] == []
 
 

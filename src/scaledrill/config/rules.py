@@ -430,3 +430,67 @@ def check_adopted_length(step: int, train) -> None:
     """The adopted run continues from adopt.step, so train.steps must lie past it."""
     if step >= train.steps:
         raise ConfigError("train.steps", f"must exceed adopt.step={step}: the run continues from there", train.steps)
+
+
+# ---------------------------------------------------------------------------------------------- ladder
+
+GROWTHS = ("workers", "accum")  # ladder.grow: which factor of B = W·b·k grows
+TRAIN_LOSS = "train_loss"  # the goal metric that reads the step's training loss instead of an evaluation
+PRUNERS = ("halving", "hyperband")  # ladder.search.pruner
+_WHOLE_OR_NULL: Rule = (lambda v: v is None or (is_whole(v) and v >= 1), "must be a positive whole number or null")
+LADDER: dict[str, Rule] = {
+    "grow": (lambda v: v in GROWTHS, f"must be one of {', '.join(GROWTHS)}"),
+    "check_every": POSITIVE_WHOLE,
+    "parallel": POSITIVE_WHOLE,
+    "batches": (lambda v: v is None or (_is_list(v) and bool(v) and all(is_whole(b) and b >= 1 for b in v)),
+                "must be a non-empty list of positive whole numbers"),
+    "max_steps": _WHOLE_OR_NULL,
+    "max_samples": _WHOLE_OR_NULL,
+}
+GOAL: dict[str, Rule] = {
+    "metric": (lambda v: isinstance(v, str) and bool(v), f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}"),
+    "value": (lambda v: v is None or _finite(v), "must be a finite number or null"),
+    "reached_when": (lambda v: v in ("below", "above"), "must be below or above"),
+}
+
+
+def check_goal(node, prefix: str = "ladder.goal") -> None:
+    """A goal (`ladder.goal`, or the task's own `task.goal`), named by `prefix`."""
+    apply(prefix, node, GOAL)
+
+
+def check_ladder(cfg) -> None:
+    """The `ladder` keys (the rungs they lead to are checked as runs, in ladder/rungs.py)."""
+    node = cfg.ladder
+    apply("ladder", node, {"grow": LADDER["grow"]})
+    check_goal(node.goal)
+    apply("ladder", node, LADDER)
+    batches = node.get("batches")
+    if batches is None:
+        apply("ladder", node, {"rungs": POSITIVE_WHOLE})
+    elif len(set(batches)) != len(batches):
+        raise ConfigError("ladder.batches", "must not repeat a batch size", list(batches))
+
+
+LADDER_SEARCH: dict[str, Rule] = {
+    "pruner": (lambda v: v in PRUNERS, f"must be one of {', '.join(PRUNERS)}"),
+    "lo": (lambda v: is_number(v) and v > 0, "must be a positive number"),
+    "hi": (lambda v: is_number(v) and v > 0, "must be a positive number"),
+    "warmup_max": (_whole_at_least(0), "must be a whole number >= 0"),
+    "reduction": (_whole_at_least(1), "must be a positive whole number"),
+    "seed": (is_whole, "must be a whole number"),
+    "storage": (lambda v: v is None or (isinstance(v, str) and bool(v)), "must be null, a journal file path or a database URL"),
+    "study": (lambda v: isinstance(v, str) and bool(v.strip()), "must be a non-empty name"),
+    "trials": (_whole_at_least(1), "must be a positive whole number"),
+    "min_steps": (lambda v: v is None or (is_whole(v) and v >= 1), "must be a positive whole number"),
+    "explode": (lambda v: v is None or (is_number(v) and v > 0), "must be a positive number"),
+}
+
+
+def check_search(node) -> None:
+    """The `ladder.search` keys (whether a journal file's directory exists is the file system's: ladder/search.py)."""
+    apply("ladder.search", node, LADDER_SEARCH)
+    if node.lo >= node.hi:
+        raise ConfigError("ladder.search.hi", f"must exceed ladder.search.lo={node.lo}", node.hi)
+    if node.reduction < 2:
+        raise ConfigError("ladder.search.reduction", "must be at least 2", node.reduction)
