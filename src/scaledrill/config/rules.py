@@ -1,10 +1,11 @@
 """The project's own rules on configuration values: ranges, one-of, divisibility, cross-key rules.
 
 The schemas (schema.py, verbs_schema.py, <part>/settings.py) say which keys exist and
-their types; this module holds every rule on their values, for the groups of a run
-(layout, train, optim, scaling, schedule, sync, telemetry), the real job (`job`) and the
-`check` verb. config/validate.py applies it before any process starts; the parts trust a
-node that passed it and keep no copy of a rule.
+their types; this module holds every rule on their values: the groups of a run (layout,
+train, optim, scaling, schedule, sync, telemetry), the real job (`job`) and the verbs'
+own keys (check, ladder, ladder.search, replay, adopt). config/validate.py applies the
+rules of a run; a verb applies its own before it reads them. The parts trust a node that
+passed and keep no copy of a rule.
 
 Most rules are rows of a table, key -> (predicate, rule text), checked in order; the
 first failure is a ConfigError naming the dotted key. A key the node does not hold is
@@ -12,13 +13,15 @@ skipped (a composed configuration holds every key of its schema; `telemetry` is 
 from its defaults first, so a caller may pass only some keys). A rule that reads two keys
 is a named function after its table.
 
-Not here, because they judge no configuration value: a cluster description file
-(forecast/cluster.py), a user's model, data and loss (tasks/), values computed at run
-time (a ladder's rungs, a dataset smaller than one global batch, warmup in epochs against
-the data's size, with `check_warmup` of optim/schedules.py as the one statement of that
-rule), the run directory (train/rundir.py) and the machine (cores, ports, mpiexec:
-ladder/rungs.py, dist/launch.py). The verb groups whose keys mix with checkpoints and
-computed values (ladder, replay, adopt, forecast) keep their checks beside that code.
+Not here, because they judge no configuration value on its own: a cluster description
+(the `forecast` group, forecast/cluster.py) and the files a forecast reads; a user's
+model, data and loss (tasks/); values computed at run time: a ladder's rungs
+(ladder/rungs.py), a dataset smaller than one global batch, warmup in epochs against the
+data's size, with `check_warmup` of optim/schedules.py as the one statement of that rule,
+replay.steps against the checkpoint's step; the run directory (train/rundir.py); and the
+machine: cores, ports that are taken, mpiexec, a journal file's directory (ladder/,
+dist/launch.py, ladder/search.py). Which gradient path a sync needs is decided in one
+place, sync/path.py; the rules here ask it.
 """
 
 import math
