@@ -9,7 +9,9 @@ the noise-scale estimate depend on what one worker sees. Run both when the
 recipe uses either.
 
 Everything is checked here, for every rung, before the first rung trains: a bad
-ladder fails at once with the dotted key, not halfway through.
+ladder fails at once with the dotted key, not halfway through. The `ladder` keys
+follow config/rules.py; the rungs they lead to are checked as runs (validate_run),
+and what only a rung's computed values or this machine decide is checked here.
 """
 
 import math
@@ -23,7 +25,6 @@ from scaledrill.config.rules import TRAIN_LOSS
 from scaledrill.config.validate import validate_run, validated_layout
 from scaledrill.errors import ConfigError
 from scaledrill.train.run import PROCS_PER_CORE
-
 
 
 @dataclass(frozen=True)
