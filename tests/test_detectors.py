@@ -6,7 +6,7 @@ from omegaconf import OmegaConf
 
 from conftest import composed
 from scaledrill.errors import ConfigError
-from scaledrill.telemetry import validate
+from scaledrill.config.rules import check_telemetry
 from scaledrill.telemetry.detectors import GradExplosion, InitialRise, LossSpike, NonFinite, OverflowStorm, ScaleCollapse, build_detectors
 
 
@@ -78,7 +78,7 @@ def test_state_survives_resume():
 
 def test_build_from_the_default_config():
     cfg = composed("telemetry", "default")
-    validate(cfg)
+    check_telemetry(cfg)
     kinds = [type(d) for d in build_detectors(cfg)]
     assert kinds == [NonFinite, LossSpike, GradExplosion, OverflowStorm, ScaleCollapse, InitialRise]
     spike = build_detectors(cfg)[1]
@@ -114,7 +114,7 @@ def test_null_disables():
 )
 def test_bad_config_names_the_key(cfg, key):
     with pytest.raises(ConfigError) as err:
-        validate(OmegaConf.create(cfg))
+        check_telemetry(OmegaConf.create(cfg))
     assert err.value.key == key
 
 

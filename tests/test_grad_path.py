@@ -6,6 +6,7 @@ import pytest
 from omegaconf import OmegaConf
 
 from conftest import make_config
+from scaledrill.config.rules import check_train
 from scaledrill.config.validate import validate_run
 from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError
@@ -39,8 +40,8 @@ def test_an_explicit_path_is_kept_and_fused_is_refused_where_rows_are_needed():
     with pytest.raises(ConfigError) as err:
         grad_path("fused", sync("qsgd"))
     assert err.value.key == "train.grads" and "sync=qsgd" in str(err.value)
-    with pytest.raises(ConfigError) as err:
-        grad_path("fast", sync("exact"))
+    with pytest.raises(ConfigError) as err:  # the one-of rule of train.grads: config/rules.py, before the path is asked for
+        check_train({"grads": "fast"})
     assert err.value.key == "train.grads"
 
 

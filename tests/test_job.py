@@ -9,7 +9,8 @@ from conftest import make_config, run_cli
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
 from scaledrill.optim import render_recipe, resolve_recipe
-from scaledrill.optim.job import job_of, job_recipe
+from scaledrill.config.validate import validate_job_recipe, validated_job
+from scaledrill.optim.job import job_recipe
 
 # Goyal et al. 2017, "Accurate, Large Minibatch SGD: Training ImageNet in 1 Hour" (arXiv 1706.02677):
 # ImageNet-1k (1,281,167 training images, from memory), 90 epochs, global batch 8192 = 256 workers × 32,
@@ -21,7 +22,9 @@ GOYAL = ["layout.workers=256", "layout.micro_batch=32", "optim.lr=0.1", "scaling
 
 def planned(*overrides):
     cfg = make_config(*overrides, name="recipe")
-    return job_recipe(cfg, Layout.from_config(cfg.layout), job_of(cfg.job))
+    layout, job = Layout.from_config(cfg.layout), validated_job(cfg.job)
+    validate_job_recipe(cfg, layout, job)
+    return job_recipe(cfg, layout, job)
 
 
 def test_goyal_imagenet_recipe_from_the_job_alone():
@@ -62,7 +65,7 @@ def test_a_rehearsal_smaller_than_the_batch_is_no_error_with_a_job(tmp_path):
 def test_side_by_side_table_has_one_column_each():
     cfg = make_config("layout.workers=8", "layout.micro_batch=32", "job.steps=1000", name="recipe")
     layout = Layout.from_config(cfg.layout)
-    real, rehearsal = job_recipe(cfg, layout, job_of(cfg.job)), resolve_recipe(cfg, layout, 1437, "drop")
+    real, rehearsal = job_recipe(cfg, layout, validated_job(cfg.job)), resolve_recipe(cfg, layout, 1437, "drop")
     console = Console(record=True, width=200)
     console.print(render_recipe({"job": real, "rehearsal": rehearsal}))
     text = console.export_text()
@@ -80,7 +83,7 @@ def test_side_by_side_table_has_one_column_each():
 ])
 def test_bad_job_values_name_the_key(overrides, key):
     with pytest.raises(ConfigError) as err:
-        job_of(make_config(*overrides, name="recipe").job)
+        validated_job(make_config(*overrides, name="recipe").job)
     assert err.value.key == key
 
 

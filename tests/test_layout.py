@@ -1,5 +1,6 @@
 import pytest
 
+from scaledrill.config.rules import check_layout
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
 
@@ -26,6 +27,6 @@ def test_global_batch_and_worker_ids():
 def test_bad_layouts_name_the_key(fields, key):
     base = dict(workers=8, procs=1, micro_batch=4, accum=1, backend="local")
     with pytest.raises(ConfigError) as err:
-        Layout(**{**base, **fields})
+        check_layout({**base, **fields})  # config/rules.py: a Layout holds what it is given
     assert err.value.key == key
     assert str(err.value).startswith(key)

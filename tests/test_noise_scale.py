@@ -3,6 +3,7 @@ import math
 import numpy as np
 import pytest
 
+from scaledrill.config.rules import check_telemetry
 from scaledrill.errors import ConfigError
 from scaledrill.telemetry.noise_scale import NoiseScale, estimate_g2, estimate_trace
 
@@ -98,6 +99,6 @@ def test_undefined_while_signal_is_negative_and_nan_is_skipped():
 
 def test_bad_inputs():
     with pytest.raises(ConfigError, match="telemetry.noise_decay"):
-        NoiseScale(decay=1.0)
+        check_telemetry({"noise_decay": 1.0})  # config/rules.py, before a NoiseScale is built
     with pytest.raises(ValueError):
         NoiseScale().update(1.0, 8, 1.0, 8)  # one worker: the two batch sizes coincide

@@ -8,7 +8,8 @@ from rich.console import Console
 from conftest import make_config
 from scaledrill.errors import ConfigError, DataError
 from scaledrill.layout import Layout
-from scaledrill.optim import render_recipe, resolve_recipe, validate
+from scaledrill.config.rules import check_recipe
+from scaledrill.optim import render_recipe, resolve_recipe
 
 IMAGENET_TRAIN = 1_281_167  # ImageNet-1k training images (from memory)
 
@@ -111,7 +112,7 @@ BAD = [
 @pytest.mark.parametrize("overrides, key", BAD)
 def test_bad_values_name_the_key(overrides, key):
     with pytest.raises(ConfigError) as err:
-        validate(make_config(*overrides))
+        check_recipe(make_config(*overrides))
     assert err.value.key == key
 
 

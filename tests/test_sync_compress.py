@@ -9,7 +9,8 @@ import torch
 from scaledrill.dist import LocalCollective
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
-from scaledrill.sync import build_sync, validate
+from scaledrill.config.rules import check_sync
+from scaledrill.sync import build_sync
 from scaledrill.sync.buckets import bounds, bucketed_sum
 from scaledrill.sync.compress import NAMES, Round, build
 from scaledrill.sync.feedback import ErrorFeedback
@@ -159,7 +160,7 @@ def test_wire_bytes_worked_examples(cfg, wire):
 )
 def test_bad_values_name_their_key(key, value):
     with pytest.raises(ConfigError) as err:
-        validate({"name": "topk", key: value})
+        check_sync({"name": "topk", key: value})
     assert err.value.key == f"sync.{key}"
 
 

@@ -7,9 +7,9 @@ import torch
 from omegaconf import OmegaConf
 from torch.utils.data import DataLoader, DistributedSampler
 
+from scaledrill.config.rules import check_train
 from scaledrill.errors import ConfigError, DataError
 from scaledrill.layout import Layout
-from scaledrill.tasks.sampler import make_sampler
 from scaledrill.tasks.torch_order import DistributedOrder
 
 
@@ -48,11 +48,11 @@ def test_a_process_slice_is_the_same_as_the_whole():
 
 def test_config_and_size_errors():
     train = OmegaConf.create({"seed": 0, "tail": "drop", "order": "torch_distributed", "torch_sampler": {"shuffle": "yes"}})
-    with pytest.raises(ConfigError) as err:
-        make_sampler(100, Layout(2, 1, 4, 1, "local"), train)
+    with pytest.raises(ConfigError) as err:  # config/rules.py, before make_sampler
+        check_train(train)
     assert err.value.key == "train.torch_sampler.shuffle"
     with pytest.raises(ConfigError) as err:
-        make_sampler(100, Layout(2, 1, 4, 1, "local"), OmegaConf.create({"seed": 0, "tail": "drop", "order": "ddp"}))
+        check_train(OmegaConf.create({"seed": 0, "tail": "drop", "order": "ddp"}))
     assert err.value.key == "train.order"
     with pytest.raises(DataError) as err:  # 30 samples over 8 ranks: 4 each, one batch of 4, no step of k=2 batches
         DistributedOrder(30, Layout(8, 1, 4, 2, "local"), 0)

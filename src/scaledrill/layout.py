@@ -4,13 +4,14 @@ A simulated worker is a unit of data, not a process. Process `rank` hosts the
 V = W / P consecutive global worker ids [rank·V, (rank+1)·V). Everything a worker
 computes depends on its global id, never on P or V, which is what makes 1×64,
 4×16 and 64×1 compute the same thing.
+
+A Layout holds what it is given; config/validate.py (`validated_layout`) checks a
+`layout` group against config/rules.py before it becomes one.
 """
 
 from dataclasses import dataclass
 
-from scaledrill.errors import ConfigError, is_whole
-
-BACKENDS = ("local", "gloo", "mpi")
+BACKENDS = ("local", "gloo", "mpi")  # layout.backend; the rules on the fields live in config/rules.py
 
 
 @dataclass(frozen=True)
@@ -20,23 +21,6 @@ class Layout:
     micro_batch: int  # b
     accum: int  # k
     backend: str
-
-    def __post_init__(self):
-        for key in ("workers", "procs", "micro_batch", "accum"):
-            value = getattr(self, key)
-            if not is_whole(value) or value < 1:
-                raise ConfigError(f"layout.{key}", "must be a positive whole number", value)
-        if self.backend not in BACKENDS:
-            raise ConfigError("layout.backend", f"must be one of {', '.join(BACKENDS)}", self.backend)
-        if self.workers % self.procs:
-            raise ConfigError(
-                "layout.workers",
-                f"must be a multiple of layout.procs={self.procs}, since every process "
-                "hosts the same number of workers",
-                self.workers,
-            )
-        if self.backend == "local" and self.procs != 1:
-            raise ConfigError("layout.procs", "the local backend runs one process; use gloo or mpi for more", self.procs)
 
     @property
     def global_batch(self) -> int:

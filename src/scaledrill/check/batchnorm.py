@@ -21,7 +21,7 @@ compute the same thing and paths train with `worker`, which every path serves):
 
 from scaledrill.check.paths import variant
 from scaledrill.check.reference import build_model
-from scaledrill.config.validate import validate_batchnorm
+from scaledrill.config.rules import check_batchnorm_path
 from scaledrill.errors import ConfigError
 from scaledrill.layout import Layout
 from scaledrill.nn.ghost_bn import GhostBatchNorm
@@ -63,7 +63,7 @@ def unserved(cfg, name: str) -> str | None:
                 f"b = {L.micro_batch} samples on its own, never the whole batch")
     grads = detail if kind == "workers" else cfg.train.grads
     try:
-        validate_batchnorm(variant(cfg, **{"train.grads": grads, "train.batchnorm": "global"}))
+        check_batchnorm_path(variant(cfg, **{"train.grads": grads, "train.batchnorm": "global"}))
     except ConfigError as err:  # the engine's own rule for where global statistics can run
         return f"{KEY}=global trains it with train.batchnorm=global, which the engine refuses: {err.rule.split(';')[0]}"
     return None

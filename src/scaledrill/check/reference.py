@@ -30,9 +30,6 @@ from scaledrill.optim import build_optimizer, clip_by_global_norm, resolve_recip
 from scaledrill.tasks.base import build_task, forward_loss
 from scaledrill.tasks.sampler import Sampler
 
-BATCHNORM = ("worker", "global")
-
-
 def cast(batch: dict, dtype: torch.dtype) -> dict:
     return {k: v.to(dtype) if v.is_floating_point() else v for k, v in batch.items()}
 

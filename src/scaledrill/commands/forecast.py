@@ -28,11 +28,12 @@ import torch
 from omegaconf import OmegaConf
 from rich.console import Console
 
+from scaledrill.config.validate import validated_job
 from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.forecast import flops_per_sample, forecast_json, param_bytes, project_rungs, render_forecast, validate
 from scaledrill.forecast.model import count_model
 from scaledrill.forecast.project import compare_to_baseline, project_baseline
-from scaledrill.optim.job import Job, job_of
+from scaledrill.optim.job import Job
 
 
 def read_result(key: str, value: str, name: str) -> dict:
@@ -153,7 +154,7 @@ def forecast_verb(cfg, run_dir: Path) -> None:
     """Steps 1-4, reading the files first so a bad path fails before the model is built."""
     node, sources, model = cfg.forecast, {}, {}
     cluster = validate(node)
-    job = job_of(cfg.get("job"))
+    job = validated_job(cfg.get("job"))
     if node.get("ladder"):
         rungs, sources["steps_to_target"] = ladder_rungs(node.ladder), f"ladder.json of {node.ladder}"
     elif job.described:

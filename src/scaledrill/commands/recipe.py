@@ -11,10 +11,10 @@ from pathlib import Path
 from omegaconf import OmegaConf
 from rich.console import Console
 
-from scaledrill.config.validate import validate_run
+from scaledrill.config.validate import validate_job_recipe, validate_run, validated_job
 from scaledrill.errors import DataError
 from scaledrill.io import write_json
-from scaledrill.optim.job import job_of, job_recipe
+from scaledrill.optim.job import job_recipe
 from scaledrill.optim.recipe import render_recipe, resolve_recipe
 from scaledrill.tasks.base import build_task
 
@@ -22,8 +22,11 @@ from scaledrill.tasks.base import build_task
 def recipe_verb(cfg, run_dir: Path) -> None:
     cfg = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
     layout = validate_run(cfg)
-    job = job_of(cfg.get("job"))
-    real = job_recipe(cfg, layout, job) if job.described else None
+    job = validated_job(cfg.get("job"))
+    real = None
+    if job.described:
+        validate_job_recipe(cfg, layout, job)
+        real = job_recipe(cfg, layout, job)
     size = build_task(cfg.task).data.train.size  # the same resolution `scaledrill run` uses
     rehearsal, skipped = None, None
     try:

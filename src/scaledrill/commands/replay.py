@@ -8,7 +8,8 @@ from pathlib import Path
 
 from omegaconf import OmegaConf
 
-from scaledrill.errors import CheckpointError, ConfigError, is_number
+from scaledrill.config import rules
+from scaledrill.errors import CheckpointError, ConfigError, is_whole
 from scaledrill.io import write_json
 from scaledrill.replay.cluster_log import departure_step, read_cluster_log
 from scaledrill.replay.variants import check_layout, compose_variants, find_source, start_checkpoint, variant_overrides
@@ -21,8 +22,7 @@ def replay_verb(cfg, run_dir: Path):
     from scaledrill.replay.show import plot_replay, print_table
 
     node = cfg.replay
-    if OmegaConf.is_missing(node, "from") or node["from"] is None:
-        raise ConfigError("replay.from", "is required: a checkpoint file or a run directory")
+    rules.check_replay(node)
     ckpt, source = find_source(node["from"])
     where = source / "config.yaml"
     if not where.is_file():
@@ -31,11 +31,9 @@ def replay_verb(cfg, run_dir: Path):
     state = checkpoint.load(ckpt)
     from_step = int(state["step"])
     steps = node.steps or saved["train"]["steps"]
-    if not isinstance(steps, int) or steps <= from_step:
+    if not is_whole(steps) or steps <= from_step:
         raise ConfigError("replay.steps", f"must be a whole number past the checkpoint's step {from_step}", steps)
     rtol = node.departure_rtol
-    if not is_number(rtol) or rtol < 0:
-        raise ConfigError("replay.departure_rtol", "must be a number >= 0", rtol)
     log = read_cluster_log(node.cluster_log) if node.cluster_log else None
 
     variants = variant_overrides(node.variants)

@@ -6,8 +6,8 @@ that pass only some keys); the YAML files in
 `scaledrill/conf` hold only what a preset changes (`defaults: [base_sgd, _self_]`
 takes the schema, then the file's own values). Hydra refuses a key a dataclass
 does not declare, so a misspelt key fails at composition (cli.py words the error);
-the project's own rules (ranges, one-of, divisibility) run from config/validate.py,
-which calls the `validate` of each part. Groups whose options carry different keys (optim,
+the project's own rules on the values (ranges, one-of, divisibility, cross-key) live
+in config/rules.py, which config/validate.py applies. Groups whose options carry different keys (optim,
 schedule, sync) get one dataclass per option, all from a shared base.
 """
 

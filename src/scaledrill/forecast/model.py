@@ -19,7 +19,7 @@ import torch
 from hydra.errors import InstantiationException
 from hydra.utils import instantiate
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_whole
 from scaledrill.forecast.flops import flops_per_sample, param_bytes
 
 DTYPES = {"float32": torch.float32, "float16": torch.float16, "bfloat16": torch.bfloat16, "int64": torch.int64,
@@ -29,7 +29,7 @@ COUNT_BATCH = 2  # samples counted; FLOPs of these models grow linearly with the
 
 def _shape(value) -> tuple[int, ...]:
     shape = list(value) if isinstance(value, (list, tuple)) or hasattr(value, "__iter__") else None
-    if not shape or not all(isinstance(d, int) and not isinstance(d, bool) and d >= 1 for d in shape):
+    if not shape or not all(is_whole(d) and d >= 1 for d in shape):
         raise ConfigError("forecast.sample_shape", "must list the whole sizes >= 1 of one sample, e.g. [3, 224, 224]",
                           value)  # fmt: skip
     return tuple(shape)

@@ -9,7 +9,9 @@ the noise-scale estimate depend on what one worker sees. Run both when the
 recipe uses either.
 
 Everything is checked here, for every rung, before the first rung trains: a bad
-ladder fails at once with the dotted key, not halfway through.
+ladder fails at once with the dotted key, not halfway through. The `ladder` keys
+follow config/rules.py; the rungs they lead to are checked as runs (validate_run),
+and what only a rung's computed values or this machine decide is checked here.
 """
 
 import math
@@ -18,13 +20,11 @@ from dataclasses import dataclass
 
 from omegaconf import OmegaConf
 
-from scaledrill.config.validate import validate_run
-from scaledrill.errors import ConfigError, is_number, is_whole
-from scaledrill.layout import Layout
+from scaledrill.config import rules
+from scaledrill.config.rules import TRAIN_LOSS
+from scaledrill.config.validate import validate_run, validated_layout
+from scaledrill.errors import ConfigError
 from scaledrill.train.run import PROCS_PER_CORE
-
-GROWTHS = ("workers", "accum")  # ladder.grow: which factor of B = W·b·k grows
-TRAIN_LOSS = "train_loss"  # the target metric that reads the step's training loss instead of an evaluation
 
 
 @dataclass(frozen=True)
@@ -64,38 +64,17 @@ class Plan:
     goal_source: str = "ladder.goal"  # where the goal came from, or why there is none
 
 
-def _whole(node, key: str, allow_none: bool = False) -> int | None:
-    value = node.get(key)
-    if value is None and allow_none:
-        return None
-    if not is_whole(value) or value < 1:
-        raise ConfigError(f"ladder.{key}", "must be a positive whole number" + (" or null" if allow_none else ""), value)
-    return value
-
-
 def read_goal(node) -> Goal:
-    metric, value, reached_when = node.metric, node.value, node.reached_when
-    if not isinstance(metric, str) or not metric:
-        raise ConfigError("ladder.goal.metric", f"must name an evaluation metric (loss, accuracy) or {TRAIN_LOSS}", metric)
-    if value is not None and (not is_number(value) or not math.isfinite(value)):
-        raise ConfigError("ladder.goal.value", "must be a finite number or null", value)
-    if reached_when not in ("below", "above"):
-        raise ConfigError("ladder.goal.reached_when", "must be below or above", reached_when)
-    return Goal(metric, None if value is None else float(value), reached_when)
+    """A goal node that has passed config/rules.py (`check_goal`) as a Goal."""
+    return Goal(node.metric, None if node.value is None else float(node.value), node.reached_when)
 
 
 def batches_of(cfg) -> list[int]:
     """B0·2^i for i < ladder.rungs, B0 the layout's global batch; or ladder.batches as given."""
     node = cfg.ladder
     if node.get("batches") is not None:
-        batches = list(node.batches)
-        if not batches or any(not is_whole(b) or b < 1 for b in batches):
-            raise ConfigError("ladder.batches", "must be a non-empty list of positive whole numbers", batches)
-        if len(set(batches)) != len(batches):
-            raise ConfigError("ladder.batches", "must not repeat a batch size", batches)
-        return sorted(batches)
-    count = _whole(node, "rungs")
-    return [Layout.from_config(cfg.layout).global_batch * 2**i for i in range(count)]
+        return sorted(node.batches)
+    return [validated_layout(cfg.layout).global_batch * 2**i for i in range(node.rungs)]
 
 
 def layout_of(cfg, grow: str, batch: int) -> tuple[int, int]:
@@ -110,9 +89,9 @@ def layout_of(cfg, grow: str, batch: int) -> tuple[int, int]:
 
 def steps_of(cfg, batch: int) -> tuple[int, str]:
     """(steps of the rung at `batch`, which setting bound them): the sample budget // B, capped."""
-    max_steps = _whole(cfg.ladder, "max_steps", allow_none=True)
+    max_steps = cfg.ladder.get("max_steps")
     cap, cap_key = (max_steps, "ladder.max_steps") if max_steps else (cfg.train.steps, "train.steps")
-    budget = _whole(cfg.ladder, "max_samples", allow_none=True)
+    budget = cfg.ladder.get("max_samples")
     if budget is None:
         return cap, f"{cap_key}={cap} (no sample budget)"
     if budget < batch:
@@ -136,11 +115,8 @@ def goal_of(cfg) -> tuple[Goal, str]:
             "whole budget and steps-to-goal cannot be fitted; set ladder.goal.value (or task.goal)"
         )
     node = OmegaConf.create({k: declared.get(k) for k in ("metric", "value", "reached_when")})
-    try:
-        found = read_goal(node)
-    except ConfigError as err:
-        raise ConfigError(err.key.replace("ladder.goal", "task.goal"), err.rule, err.value) from None
-    return found, f"ladder.goal not set: using task {name}'s goal (task.goal)"
+    rules.check_goal(node, "task.goal")
+    return read_goal(node), f"ladder.goal not set: using task {name}'s goal (task.goal)"
 
 
 def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = None, local: bool = False):
@@ -161,11 +137,9 @@ def rung_config(cfg, rung: Rung, lr: float | None = None, warmup: int | None = N
 def plan_ladder(cfg) -> Plan:
     """Check the ladder and every rung's run config; raise ConfigError naming the key."""
     node = cfg.ladder
-    if node.grow not in GROWTHS:
-        raise ConfigError("ladder.grow", f"must be one of {', '.join(GROWTHS)}", node.grow)
+    rules.check_ladder(cfg)
     goal, source = goal_of(cfg)
-    check_every = _whole(node, "check_every")
-    parallel = _whole(node, "parallel")
+    check_every, parallel = node.check_every, node.parallel
     if parallel > (os.cpu_count() or 1):
         raise ConfigError("ladder.parallel", f"must be at most the {os.cpu_count()} cores of this machine", parallel)
     procs = parallel * cfg.layout.procs  # rungs side by side, each with its own processes

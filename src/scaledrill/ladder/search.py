@@ -45,11 +45,10 @@ import optuna
 from optuna.storages import JournalStorage
 from optuna.storages.journal import JournalFileBackend
 
+from scaledrill.config.rules import PRUNERS, check_search
 from scaledrill.dist import LocalCollective
-from scaledrill.errors import ConfigError, is_number, is_whole
+from scaledrill.errors import ConfigError
 from scaledrill.ladder.rungs import Plan, Rung, Watch, rung_config
-
-PRUNERS = ("halving", "hyperband")
 
 
 @dataclass
@@ -113,42 +112,15 @@ class SearchSettings:
 
     @classmethod
     def from_config(cls, node, check_every: int) -> "SearchSettings":
-        def positive(key, whole=False, allow_none=False):
-            value = node.get(key)
-            if value is None and allow_none:
-                return None
-            if not (is_whole(value) if whole else is_number(value)) or value <= 0:
-                raise ConfigError(f"ladder.search.{key}", f"must be a positive {'whole ' if whole else ''}number", value)
-            return value
-
-        if node.get("pruner") not in PRUNERS:
-            raise ConfigError("ladder.search.pruner", f"must be one of {', '.join(PRUNERS)}", node.get("pruner"))
-        lo, hi = positive("lo"), positive("hi")
-        if lo >= hi:
-            raise ConfigError("ladder.search.hi", f"must exceed ladder.search.lo={lo}", hi)
-        warmup = node.warmup_max
-        if not is_whole(warmup) or warmup < 0:
-            raise ConfigError("ladder.search.warmup_max", "must be a whole number >= 0", warmup)
-        reduction = positive("reduction", whole=True)
-        if reduction < 2:
-            raise ConfigError("ladder.search.reduction", "must be at least 2", reduction)
-        seed = node.seed
-        if not is_whole(seed):
-            raise ConfigError("ladder.search.seed", "must be a whole number", seed)
+        check_search(node)  # config/rules.py
         storage = node.get("storage")
-        if storage is not None and not (isinstance(storage, str) and storage):
-            raise ConfigError("ladder.search.storage", "must be null, a journal file path or a database URL", storage)
         if storage and "://" not in storage and not Path(storage).expanduser().parent.is_dir():
             raise ConfigError("ladder.search.storage", "is a journal file whose directory must exist "
                               "(on a disk every process of the search can reach)", storage)  # fmt: skip
-        study = node.get("study", "ladder")
-        if not isinstance(study, str) or not study.strip():
-            raise ConfigError("ladder.search.study", "must be a non-empty name", study)
         return cls(
-            trials=positive("trials", whole=True), pruner=node.pruner, reduction=reduction,
-            min_steps=positive("min_steps", whole=True, allow_none=True) or check_every, lo=float(lo), hi=float(hi),
-            warmup_max=warmup, explode=positive("explode", allow_none=True), seed=seed,
-            storage=storage, study=study.strip(),
+            trials=node.trials, pruner=node.pruner, reduction=node.reduction, min_steps=node.get("min_steps") or check_every,
+            lo=float(node.lo), hi=float(node.hi), warmup_max=node.warmup_max, explode=node.get("explode"), seed=node.seed,
+            storage=storage, study=node.get("study", "ladder").strip(),
         )
 
     def open_storage(self):

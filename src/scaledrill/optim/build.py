@@ -14,10 +14,8 @@ scheduled rate with `set_lr` before every step.
 """
 
 import torch
-from omegaconf import ListConfig
 from torch.nn import Parameter
 
-from scaledrill.errors import ConfigError, is_number
 from scaledrill.optim.groups import param_groups
 from scaledrill.optim.lamb import LAMB
 from scaledrill.optim.lars import LARS
@@ -34,8 +32,7 @@ def decay_of(node) -> str:
 
 def build_optimizer(named_params: list[tuple[str, Parameter]], node) -> torch.optim.Optimizer:
     """The optimizer of the `optim` config group over `named_params`."""
-    node = settings_of(node)  # the keys not given take their optimizer's defaults
-    validate_optim(node)
+    node = settings_of(node)  # the keys not given take their optimizer's defaults (checked by config/rules.py)
     groups = param_groups(named_params, float(node.weight_decay), node.exclude)
     lr, name = float(node.lr), node.name
     if name == "sgd":
@@ -54,46 +51,3 @@ def set_lr(optimizer: torch.optim.Optimizer, lr: float) -> None:
     """Set every group's rate to `lr` times the group's `lr_scale` (1 unless a group sets one)."""
     for group in optimizer.param_groups:
         group["lr"] = lr * group.get("lr_scale", 1.0)
-
-
-def validate_optim(node) -> None:
-    """Check the `optim` group; each failure names its key."""
-    name = node.get("name")
-    if name not in OPTIMIZERS:
-        raise ConfigError("optim.name", f"must be one of {', '.join(OPTIMIZERS)}", name)
-    _check(node, "lr", lambda x: x > 0, "must be a positive number")
-    _check(node, "weight_decay", lambda x: x >= 0, "must be a number >= 0")
-    _check(node, "clip_norm", lambda x: x > 0, "must be a positive number, or null for no clipping", optional=True)
-    decay = decay_of(node)
-    if decay not in DECAY[name]:
-        raise ConfigError("optim.decay", f"{name} supports {' or '.join(DECAY[name])} weight decay", decay)
-    exclude = node.get("exclude")
-    if exclude is not None and not (_is_list(exclude) and all(isinstance(p, str) for p in exclude)):
-        raise ConfigError("optim.exclude", "must be null (parameters with <= 1 dimension) or a list of name patterns", exclude)
-    if name in ("sgd", "lars"):
-        _check(node, "momentum", lambda x: 0 <= x < 1, "must be in [0, 1)")
-    if name == "sgd" and node.get("nesterov") and not node.get("momentum"):
-        raise ConfigError("optim.nesterov", "needs optim.momentum > 0", node.nesterov)
-    if name in ("adamw", "lamb"):
-        betas = node.get("betas")
-        if not (_is_list(betas) and len(betas) == 2 and all(is_number(b) and 0 <= b < 1 for b in betas)):
-            raise ConfigError("optim.betas", "must be two numbers in [0, 1)", betas)
-        _check(node, "eps", lambda x: x >= 0, "must be a number >= 0")
-    if name in ("lars", "lamb"):
-        _check(node, "trust_cap", lambda x: x > 0, "must be a positive number, or null for no cap", optional=True)
-    if name == "lars":
-        _check(node, "trust_coefficient", lambda x: x > 0, "must be a positive number")
-        if node.get("denominator") not in ("grad", "update"):
-            raise ConfigError("optim.denominator", "must be grad (‖g‖ + β‖w‖) or update (‖g + βw‖)", node.denominator)
-
-
-def _check(node, key: str, ok, rule: str, optional: bool = False) -> None:
-    value = node.get(key)
-    if value is None and optional:
-        return
-    if not is_number(value) or not ok(value):
-        raise ConfigError(f"optim.{key}", rule, value)
-
-
-def _is_list(value) -> bool:
-    return isinstance(value, (list, tuple, ListConfig))

@@ -61,47 +61,33 @@ class Job:
         return asdict(self)
 
 
-def _whole(value) -> bool:
-    return isinstance(value, int) and not isinstance(value, bool) and value >= 1
-
-
 def job_of(node) -> Job:
-    """The `job` group as a Job; a ConfigError names the first bad key. None or a missing group: nothing described."""
+    """The `job` group as a Job; None or a missing group: nothing described. The group must
+    have passed config/rules.py (`check_job`)."""
     if node is None:
         return Job()
-    known = {"dataset_size", "epochs", "steps", "baseline"}
-    unknown = sorted(set(node) - known)
-    if unknown:
-        raise ConfigError(f"job.{unknown[0]}", f"is not a job setting (known: {', '.join(sorted(known))})")
-    size, epochs, steps = node.get("dataset_size"), node.get("epochs"), node.get("steps")
     base = node.get("baseline") or {}
-    batch, devices = base.get("batch"), base.get("devices")
-    for key, value in (("dataset_size", size), ("steps", steps), ("baseline.batch", batch), ("baseline.devices", devices)):
-        if value is not None and not _whole(value):
-            raise ConfigError(f"job.{key}", "must be null or a whole number >= 1", value)
-    if epochs is not None and not (isinstance(epochs, (int, float)) and not isinstance(epochs, bool) and epochs > 0):
-        raise ConfigError("job.epochs", "must be null or a number of passes > 0", epochs)
-    if epochs is not None and steps is not None:
-        raise ConfigError("job.steps", "set job.epochs or job.steps, not both", steps)
-    if size is not None and epochs is None and steps is None:
-        raise ConfigError("job.epochs", "the real job needs a length with job.dataset_size: set job.epochs or job.steps")
-    if epochs is not None and size is None:
-        raise ConfigError("job.dataset_size", "is needed to turn job.epochs into steps", None)
-    if devices is not None and batch is None:
-        raise ConfigError("job.baseline.batch", "is needed with job.baseline.devices", None)
-    if batch is not None and devices is None:
-        raise ConfigError("job.baseline.devices", "is needed with job.baseline.batch", None)
-    return Job(size, None if epochs is None else float(epochs), steps, batch, devices)
+    epochs = node.get("epochs")
+    return Job(node.get("dataset_size"), None if epochs is None else float(epochs), node.get("steps"),
+               base.get("batch"), base.get("devices"))
 
 
-def job_recipe(cfg, layout, job: Job) -> Recipe:
-    """The recipe the cluster runs: the same groups resolved on the job's dataset and length."""
+def job_steps(job: Job, layout, tail: str) -> int:
+    """The job's optimizer steps at this layout's global batch; a ConfigError when its
+    dataset cannot fill one batch or it has no length."""
     B = layout.global_batch
     if job.dataset_size is not None and job.dataset_size < B:
         raise ConfigError("job.dataset_size", f"is smaller than one global batch B={B} ({layout.describe()})",
                           job.dataset_size)  # fmt: skip
-    total = job.total_steps(B, cfg.train.tail)
+    total = job.total_steps(B, tail)
     if total is None:
         raise ConfigError("job.epochs", "the job needs a length: set job.epochs (with job.dataset_size) or job.steps")
+    return total
+
+
+def job_recipe(cfg, layout, job: Job) -> Recipe:
+    """The recipe the cluster runs: the same groups resolved on the job's dataset and length
+    (checked against that length first: config/validate.py, `validate_job_recipe`)."""
+    total = job_steps(job, layout, cfg.train.tail)
     length = "job.steps" if job.steps is not None else "job.epochs"
     return resolve_recipe(cfg, layout, job.dataset_size, cfg.train.tail, steps=total, length=length)

@@ -14,10 +14,10 @@ from dataclasses import asdict, dataclass
 from rich.table import Table
 
 from scaledrill.errors import DataError
-from scaledrill.optim.build import decay_of, validate_optim
+from scaledrill.optim.build import decay_of
 from scaledrill.optim.groups import describe_exclusions
-from scaledrill.optim.scaling import scaled_lr, validate_scaling
-from scaledrill.optim.schedules import Schedule, build_schedule, check_warmup, horizon_of, validate_schedule
+from scaledrill.optim.scaling import scaled_lr
+from scaledrill.optim.schedules import Schedule, build_schedule, check_warmup, horizon_of
 
 FORMULAS = {
     "none": "lr = base_lr",
@@ -69,23 +69,15 @@ class Recipe:
         return out
 
 
-def validate(cfg, horizon: int | None = None) -> None:
-    """Check the optim, scaling and schedule groups; raise ConfigError naming the first bad key.
-    `horizon`: the schedule's length in steps when it is not the rehearsal's (the real job's)."""
-    validate_optim(cfg.optim)
-    validate_scaling(cfg.scaling)
-    validate_schedule(cfg.schedule, horizon_of(cfg.schedule, cfg.train.steps) if horizon is None else horizon)
-
-
 def resolve_recipe(
     cfg, layout, dataset_size: int | None, tail: str, steps: int | None = None, length: str = "train.steps"
 ) -> Recipe:
     """The recipe of `cfg` at `layout` on a training set of `dataset_size` samples (None: a stream).
 
     `steps`: the run length when it is not the rehearsal's `train.steps` (the real job's,
-    named `length` in errors); the schedule then spans exactly those steps.
+    named `length` in errors); the schedule then spans exactly those steps. The groups
+    must have passed config/rules.py (`check_recipe`, with `steps` as the horizon).
     """
-    validate(cfg, steps)
     B = layout.global_batch
     total = cfg.train.steps if steps is None else steps
     horizon = horizon_of(cfg.schedule, total) if steps is None else steps

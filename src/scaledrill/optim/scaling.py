@@ -16,11 +16,7 @@ Tuning: use the batch the base rate was tuned at as `scaling.base_batch`, not th
 per-worker batch.
 """
 
-from omegaconf import OmegaConf
-
-from scaledrill.errors import ConfigError, is_number, is_whole
-
-RULES = ("none", "linear", "sqrt", "power")
+RULES = ("none", "linear", "sqrt", "power")  # scaling.rule (checked by config/rules.py)
 
 
 def scaled_lr(rule: str, base_lr: float, base_batch: int | None, global_batch: int, exponent: float = 1.0) -> float:
@@ -30,21 +26,3 @@ def scaled_lr(rule: str, base_lr: float, base_batch: int | None, global_batch: i
     ratio = global_batch / base_batch
     power = {"linear": 1.0, "sqrt": 0.5, "power": exponent}[rule]
     return float(base_lr) * ratio**power
-
-
-def validate_scaling(node) -> None:
-    """Check the `scaling` group; each failure names its key."""
-    if node.rule not in RULES:
-        raise ConfigError("scaling.rule", f"must be one of {', '.join(RULES)}", node.rule)
-    base_lr = node.base_lr
-    if not is_number(base_lr) or base_lr <= 0:
-        raise ConfigError("scaling.base_lr", "must be a positive number", base_lr)
-    if node.rule == "none":
-        return
-    if OmegaConf.is_missing(node, "base_batch") or node.base_batch is None:
-        raise ConfigError("scaling.base_batch", f"rule {node.rule} needs the global batch the base lr was tuned at")
-    base_batch = node.base_batch
-    if not is_whole(base_batch) or base_batch <= 0:
-        raise ConfigError("scaling.base_batch", "must be a positive whole number", base_batch)
-    if node.rule == "power" and not is_number(node.exponent):
-        raise ConfigError("scaling.exponent", "must be a number", node.exponent)

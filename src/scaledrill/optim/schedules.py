@@ -26,9 +26,9 @@ the original run but keeps its schedule (the horizon stays the original length).
 import math
 from dataclasses import dataclass
 
-from scaledrill.errors import ConfigError, is_number, is_whole
+from scaledrill.errors import ConfigError, is_whole
 
-SHAPES = ("constant", "cosine", "polynomial", "step")
+SHAPES = ("constant", "cosine", "polynomial", "step")  # schedule.name; the key rules live in config/rules.py
 
 
 def warmup(step: int, warmup_steps: int, start: float) -> float:
@@ -121,54 +121,11 @@ def horizon_of(node, train_steps: int) -> int:
     return train_steps if horizon is None else horizon
 
 
-def validate_schedule(node, total_steps: int) -> None:
-    """Check the `schedule` group before the run length in epochs is known (`total_steps`: the horizon)."""
-    name = node.get("name")
-    if name not in SHAPES:
-        raise ConfigError("schedule.name", f"must be one of {', '.join(SHAPES)}", name)
-    horizon = node.get("total_steps")
-    if horizon is not None:
-        _check(node, "total_steps", is_whole(horizon) and horizon >= 1, "must be null (= train.steps) or a whole number >= 1")
-    steps, epochs = node.get("warmup_steps"), node.get("warmup_epochs")
-    if epochs is not None:
-        if steps:
-            raise ConfigError("schedule.warmup_epochs", "set warmup_steps or warmup_epochs, not both", epochs)
-        _check(node, "warmup_epochs", is_number(epochs) and epochs >= 0, "must be a number >= 0")
-    elif steps is not None:
-        _check(node, "warmup_steps", is_whole(steps) and steps >= 0, "must be a whole number >= 0")
-        check_warmup(steps, total_steps)
-    start = node.get("warmup_start")
-    _check(node, "warmup_start", is_number(start) and 0 <= start <= 1, "must be a fraction of the peak rate in [0, 1]")
-    if name in ("cosine", "polynomial"):
-        f = node.get("final_factor")
-        _check(node, "final_factor", is_number(f) and 0 <= f <= 1, "must be a fraction of the peak rate in [0, 1]")
-    if name == "polynomial":
-        p = node.get("power")
-        _check(node, "power", is_number(p) and p > 0, "must be a positive number")
-    if name == "step":
-        g = node.get("gamma")
-        _check(node, "gamma", is_number(g) and 0 < g <= 1, "must be a factor in (0, 1]")
-        _check_milestones(node.get("milestones"), total_steps)
-
-
 def check_warmup(
     warmup_steps: int, total_steps: int, key: str = "schedule.warmup_steps", value=None, length: str = "train.steps"
 ) -> None:
+    """The one statement of "warmup fits in training": config/rules.py applies it to schedule.warmup_steps,
+    `resolve_recipe` to warmup in epochs, which only the data's size turns into steps."""
     if warmup_steps > total_steps:
         shown = warmup_steps if value is None else f"{value} = {warmup_steps} steps"
         raise ConfigError(key, f"warmup is longer than training ({length}={total_steps})", shown)
-
-
-def _check_milestones(values, total_steps: int) -> None:
-    values = list(values or [])
-    whole = all(is_whole(m) for m in values)
-    fractions = all(is_number(m) and not is_whole(m) and 0 < m < 1 for m in values)
-    if not (whole or fractions):
-        raise ConfigError("schedule.milestones", "must be all step numbers or all fractions in (0, 1)", values)
-    if whole and any(m < 0 or m > total_steps for m in values):
-        raise ConfigError("schedule.milestones", f"step numbers must lie in 0..train.steps={total_steps}", values)
-
-
-def _check(node, key: str, ok: bool, rule: str) -> None:
-    if not ok:
-        raise ConfigError(f"schedule.{key}", rule, node.get(key))

@@ -29,9 +29,10 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
+from scaledrill.config import rules
 from scaledrill.config.validate import validate_run
 from scaledrill.dist import LocalCollective
-from scaledrill.errors import CheckpointError, ConfigError
+from scaledrill.errors import CheckpointError
 from scaledrill.io import write_json
 from scaledrill.replay.adopt_optim import adopt_optimizer
 from scaledrill.replay.cluster_log import read_cluster_log
@@ -128,16 +129,12 @@ def _import_log(run_dir: Path, log_path, step: int, yaml: str) -> int:
 def adopt(cfg, run_dir: Path) -> dict:
     """Steps 1-6; returns what adopt.json records."""
     node = cfg.adopt
-    if OmegaConf.is_missing(node, "from") or not node.get("from"):
-        raise ConfigError("adopt.from", "is required: the checkpoint file to adopt")
-    step = node.get("step")
-    if OmegaConf.is_missing(node, "step") or not isinstance(step, int) or isinstance(step, bool) or step < 0:
-        raise ConfigError("adopt.step", "must be the whole number of optimizer steps the checkpoint was taken after", None if OmegaConf.is_missing(node, "step") else step)
+    rules.check_adopt(node)
+    step = node.step
     run_cfg = OmegaConf.create({k: v for k, v in OmegaConf.to_container(cfg, resolve=True).items() if k != "adopt"})
     run_cfg.resume = None
     validate_run(run_cfg)
-    if step >= run_cfg.train.steps:
-        raise ConfigError("train.steps", f"must exceed adopt.step={step}: the run continues from there", run_cfg.train.steps)
+    rules.check_adopted_length(step, run_cfg.train)
     path = Path(str(node["from"])).expanduser()
     raw = _load(path)
     local = OmegaConf.merge(run_cfg, {"layout": {"procs": 1, "backend": "local"}})

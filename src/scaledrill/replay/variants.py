@@ -36,8 +36,8 @@ from omegaconf import OmegaConf
 
 from scaledrill.config.keys import composition_error, refuse_unknown
 from scaledrill.config.overrides import compose_run, hydra_session, rebuild_overrides, search_dirs
+from scaledrill.config.validate import validated_layout
 from scaledrill.errors import CheckpointError, ConfigError
-from scaledrill.layout import Layout
 from scaledrill.telemetry.store import read_events
 from scaledrill.train import checkpoint
 
@@ -117,7 +117,7 @@ def render_path(path: Path) -> str:
 
 def check_layout(name: str, cfg, state: dict) -> None:
     """A variant keeps the checkpoint's workers, micro-batch and accumulation (the resume rule of train/checkpoint.py)."""
-    change = checkpoint.layout_change(state, Layout.from_config(cfg.layout))
+    change = checkpoint.layout_change(state, validated_layout(cfg.layout))
     if change is not None:
         key, saved, now = change
         raise ConfigError(

@@ -11,6 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
+from scaledrill.errors import is_number
 from scaledrill.report import figures as fg
 from scaledrill.report.html import Section, absent, collapsed, figure, key_values, paragraph, table, verdict
 from scaledrill.report.numbers import count, duration, number
@@ -164,7 +165,7 @@ def run_section(directory: Path, source: str) -> Section:
 
 def _shown(key: str, value):
     """Summary values for people: seconds as durations, byte counts with k/M."""
-    if isinstance(value, bool) or not isinstance(value, (int, float)):
+    if not is_number(value):
         return value
     if key.endswith("seconds"):
         return duration(value)

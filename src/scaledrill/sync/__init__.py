@@ -6,6 +6,6 @@ contract, buckets.py for how bytes travel, compress/ for the methods and
 feedback.py for error feedback.
 """
 
-from scaledrill.sync.layer import SyncLayer, build_sync, validate
+from scaledrill.sync.layer import SyncLayer, build_sync
 
-__all__ = ["SyncLayer", "build_sync", "validate"]
+__all__ = ["SyncLayer", "build_sync"]

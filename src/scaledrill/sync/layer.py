@@ -20,37 +20,12 @@ from dataclasses import fields, is_dataclass, replace
 
 import torch
 
-from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.sync.buckets import bucketed_sum
-from scaledrill.sync.compress import NAMES, Round, build, dense_bytes
+from scaledrill.sync.compress import Round, build, dense_bytes
 from scaledrill.sync.feedback import ErrorFeedback
 from scaledrill.sync.path import per_worker_cause
-from scaledrill.sync.settings import KEYS, settings_of
+from scaledrill.sync.settings import settings_of
 from scaledrill.sync.tree import tree_sum
-
-
-def validate(cfg) -> None:
-    """Raise ConfigError naming the first `sync.*` key that breaks its rule (keys not given are not checked)."""
-    for key in cfg.keys():
-        if key not in KEYS:
-            raise ConfigError(f"sync.{key}", f"unknown key; known: {', '.join(KEYS)}", key)
-    rules = {
-        "name": (lambda v: v in NAMES, f"must be one of {', '.join(NAMES)}"),
-        "error_feedback": (lambda v: isinstance(v, bool), "must be true or false"),
-        "fidelity": (lambda v: isinstance(v, bool), "must be true or false"),
-        "bitwise": (lambda v: isinstance(v, bool), "must be true or false"),
-        "unbiased": (lambda v: isinstance(v, bool), "must be true or false"),
-        "bucket_kib": (lambda v: is_number(v) and v > 0, "must be a number > 0"),
-        "fraction": (lambda v: is_number(v) and 0 < v <= 1, "must be in (0, 1]"),
-        "count": (lambda v: v is None or (is_whole(v) and v >= 1), "must be null or a whole number >= 1"),
-        "levels": (lambda v: is_whole(v) and v >= 1, "must be a whole number >= 1"),
-        "rank": (lambda v: is_whole(v) and v >= 1, "must be a whole number >= 1"),
-        "exact_until": (lambda v: is_whole(v) and v >= 0, "must be a whole number >= 0"),
-        "min_saving": (lambda v: is_number(v) and v > 0, "must be a number > 0"),
-    }
-    for key, (ok, rule) in rules.items():
-        if key in cfg and not ok(cfg[key]):
-            raise ConfigError(f"sync.{key}", rule, cfg[key])
 
 
 class SyncLayer:
@@ -141,8 +116,7 @@ def _restore(state, d: dict, prefix: str = ""):
 
 
 def build_sync(cfg, layout, shapes, collective, seed: int, dtype: torch.dtype = torch.float32) -> SyncLayer:
-    """The sync layer that `cfg` (the `sync` node) describes, for this layout and model."""
-    validate(cfg)
+    """The sync layer that `cfg` (the `sync` node, checked by config/rules.py) describes, for this layout and model."""
     cfg = settings_of(cfg)  # the keys not given take their compressor's defaults
     compressor = build(cfg)
     if cfg.error_feedback:

@@ -66,7 +66,7 @@ KEYS = tuple(dict.fromkeys(f.name for c in VARIANTS.values() for f in fields(c))
 
 def settings_of(cfg) -> DictConfig:
     """`cfg` (a `sync` node or dict, possibly partial) over the defaults of its compressor's
-    schema; keys that compressor does not take are left out. Call after `validate`."""
+    schema; keys that compressor does not take are left out. Call after config/rules.py's `check_sync`."""
     given = OmegaConf.to_container(cfg) if isinstance(cfg, DictConfig) else dict(cfg)
     kind = VARIANTS[given.get("name", SyncConfig.name)]
     known = {f.name for f in fields(kind)}

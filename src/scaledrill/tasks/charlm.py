@@ -15,7 +15,7 @@ import math
 import torch
 from torch import nn
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_whole
 from scaledrill.tasks.digits import TensorSet
 
 PAD, START = 0, 1
@@ -43,12 +43,12 @@ def generate(count: int, vocab: int, min_len: int, max_len: int, probs: torch.Te
 class CharLMData:
     def __init__(self, vocab: int = 32, min_len: int = 4, max_len: int = 16, train_size: int = 4096,
                  test_size: int = 512, sharpness: float = 2.0, seed: int = 0):
-        if not isinstance(vocab, int) or vocab < 3:
+        if not is_whole(vocab) or vocab < 3:
             raise ConfigError("task.data.vocab", "must be a whole number >= 3 (pad, start and a symbol)", vocab)
         if not 1 <= min_len <= max_len:
             raise ConfigError("task.data.min_len", f"must satisfy 1 <= min_len <= max_len={max_len}", min_len)
         for key, value in (("train_size", train_size), ("test_size", test_size)):
-            if not isinstance(value, int) or value < 1:
+            if not is_whole(value) or value < 1:
                 raise ConfigError(f"task.data.{key}", "must be a positive whole number", value)
         self.vocab, self.max_len = vocab, max_len
         gen = torch.Generator().manual_seed(seed)

@@ -18,7 +18,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_whole
 from scaledrill.nn.keyed_random import hashed_normal
 
 
@@ -43,7 +43,7 @@ class NoiseStream:
 
 class QuadraticData:
     def __init__(self, dim: int = 100, theta0: float = 1.0, seed: int = 0):
-        if not isinstance(dim, int) or dim < 1:
+        if not is_whole(dim) or dim < 1:
             raise ConfigError("task.data.dim", "must be a positive whole number", dim)
         self.dim, self.theta0, self.seed = dim, float(theta0), seed
         self.h, self.c = spectrum(dim)

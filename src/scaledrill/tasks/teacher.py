@@ -12,7 +12,7 @@ from dataclasses import dataclass, field
 
 import torch
 
-from scaledrill.errors import ConfigError
+from scaledrill.errors import ConfigError, is_whole
 from scaledrill.nn.keyed_random import hashed_normal
 from scaledrill.tasks.digits import TensorSet
 from scaledrill.tasks.mlp import MLP
@@ -55,7 +55,7 @@ class TeacherData:
     def __init__(self, in_dim: int = 32, hidden: int = 64, out_dim: int = 8, depth: int = 2,
                  noise: float = 0.0, test_size: int = 1024, seed: int = 0):
         for key, value in (("in_dim", in_dim), ("hidden", hidden), ("out_dim", out_dim), ("test_size", test_size)):
-            if not isinstance(value, int) or value < 1:
+            if not is_whole(value) or value < 1:
                 raise ConfigError(f"task.data.{key}", "must be a positive whole number", value)
         if noise < 0:
             raise ConfigError("task.data.noise", "must be >= 0", noise)

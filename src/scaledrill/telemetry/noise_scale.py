@@ -28,8 +28,6 @@ Tuning: `decay` trades lag for noise. 0.95 averages over ~20 steps; raise it
 import math
 from dataclasses import asdict, dataclass
 
-from scaledrill.errors import ConfigError, is_number
-
 
 def estimate_g2(small_sq: float, b_small: float, big_sq: float, b_big: float) -> float:
     """Step 1: the unbiased one-step estimate of |G|²."""
@@ -45,16 +43,12 @@ def estimate_trace(small_sq: float, b_small: float, big_sq: float, b_big: float)
 class NoiseScale:
     """Smoothed |G|², tr(Σ) and their ratio; every field is a plain number for exact resume."""
 
-    decay: float = 0.95
+    decay: float = 0.95  # telemetry.noise_decay, in [0, 1) (config/rules.py)
     g2_sum: float = 0.0  # EMA accumulators, still carrying the start-up bias
     trace_sum: float = 0.0
     weight: float = 0.0  # 1 − decay^updates: what the accumulators must be divided by
     updates: int = 0
     skipped: int = 0  # steps with a non-finite input, left out of the averages
-
-    def __post_init__(self):
-        if not is_number(self.decay) or not 0.0 <= self.decay < 1.0:
-            raise ConfigError("telemetry.noise_decay", "must be a number in [0, 1)", self.decay)
 
     def update(self, small_sq: float, b_small: float, big_sq: float, b_big: float) -> float | None:
         """Fold in one step's two squared norms; returns the current B_simple (or None)."""

@@ -18,10 +18,9 @@ from pathlib import Path
 import torch
 from omegaconf import OmegaConf
 
-from scaledrill.config.validate import validate_batchnorm
+from scaledrill.config.validate import validate_run
 from scaledrill.dist import Collective
-from scaledrill.errors import ConfigError, Interrupted
-from scaledrill.layout import Layout
+from scaledrill.errors import Interrupted
 from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
 from scaledrill.nn.stock import adapt_model
 from scaledrill.optim import build_optimizer, clip_flat, resolve_recipe, set_lr
@@ -48,10 +47,8 @@ class Trainer:
 
     def __init__(self, cfg, collective: Collective):
         self.cfg, self.comm = cfg, collective
-        self.layout = Layout.from_config(cfg.layout)
+        self.layout = validate_run(cfg)  # also when a Trainer is built without `scaledrill run`: the parts trust their nodes
         self.workers = self.layout.worker_ids(collective.rank)
-        if cfg.train.dtype not in DTYPES:
-            raise ConfigError("train.dtype", f"must be one of {', '.join(DTYPES)}", cfg.train.dtype)
         self.dtype = DTYPES[cfg.train.dtype]
 
         torch.manual_seed(cfg.train.seed)  # same initial parameters in every process
@@ -77,7 +74,6 @@ class Trainer:
         self.grads.accum_dtype = self.precision.accum_dtype
         self.path = self._choose_path(cfg.train.grads)
         check_fits(self)  # before the first step allocates
-        validate_batchnorm(cfg)  # also when a Trainer is built without `scaledrill run`
         self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
             set_global_statistics(self.model, collective)  # the group is the process's V·b samples, summed over P

@@ -28,7 +28,6 @@ from dataclasses import dataclass
 
 import torch
 
-from scaledrill.config.validate import validate_precision
 from scaledrill.errors import is_number
 
 DTYPES16 = {"fp32": None, "bf16": torch.bfloat16, "fp16": torch.float16}  # None: the master dtype
@@ -102,8 +101,7 @@ def value_shares(flat: torch.Tensor) -> tuple[float, float]:
 class Precision:
     """The run's precision settings and its loss scaler; the engine's hooks."""
 
-    def __init__(self, train):
-        validate_precision(train)
+    def __init__(self, train):  # `train` has passed config/rules.py
         self.name = train.precision
         self.accum_name = train.accum_dtype
         self.autocast_dtype = DTYPES16[self.name]
