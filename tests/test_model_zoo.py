@@ -179,6 +179,14 @@ def test_a_layer_without_a_16_bit_kernel_names_the_precision_not_the_model():
     assert "runs in full precision" in str(err.value) and "try train.precision=bf16" in str(err.value)
 
 
+def test_a_model_that_fixes_float32_names_train_dtype_when_run_in_float64():
+    trainer = trainer_for("CastsInput", "train.dtype=float64")
+    with pytest.raises(ConfigError) as err:
+        trainer.step()
+    assert err.value.key == "train.dtype" and "runs in float32" in str(err.value)
+    assert "use train.dtype=float32" in str(err.value) and "tests.zoo.CastsInput" in str(err.value)
+
+
 def test_failing_user_model_exits_2_on_local_check_and_gloo_run(tmp_path):
     local = run_cli("check", *model_overrides("ReturnsTuple"), "layout.workers=2", "check.paths=[fused]",
                     f"hydra.run.dir={tmp_path}/check")

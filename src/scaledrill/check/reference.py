@@ -69,7 +69,8 @@ def model_dtype(cfg) -> tuple[torch.dtype, str, str]:
             forward_loss(task.model, task.loss, cast(few, torch.float32))
         except ConfigError:
             raise wide from None  # broken in any dtype: name the float64 failure
-        return torch.float32, f"the model fixes its own dtype (in float64: {wide.rule.split(' raised ')[-1][:160]})", task.note
+        why = wide.rule.split(" raised ")[-1] if " raised " in wide.rule else wide.rule.rpartition(" (")[2].split(");")[0]
+        return torch.float32, f"the model fixes its own dtype (in float64: {why[:160]})", task.note
 
 
 def mean_loss(task, batch: dict) -> torch.Tensor:

@@ -5,6 +5,7 @@ torch loss (module or function) as its Loss (adapters.py), so ordinary torch cod
 plugs in without glue.
 """
 
+import copy
 from dataclasses import dataclass
 from typing import Any
 
@@ -64,7 +65,7 @@ def target_name(obj) -> str:
     return f"{type(obj).__module__}.{type(obj).__qualname__}"
 
 
-def _forward_error(model, err: Exception, forward) -> ConfigError:
+def _forward_error(model, err: Exception, forward, inputs) -> ConfigError:
     """The ConfigError for a forward that raised; under autocast it names train.precision when the
     same forward runs in full precision (torch's CPU kernels lack some 16-bit layers, e.g. fp16 LSTM)."""
     said = f"the forward pass of {target_name(model)} raised {type(err).__name__}: {err}"
@@ -80,7 +81,24 @@ def _forward_error(model, err: Exception, forward) -> ConfigError:
         return ConfigError("train.precision", f"the forward pass of {target_name(model)} fails under autocast to {dtype} "
                            f"but runs in full precision: torch on this CPU has no {dtype} kernel for one of its layers "
                            f"({type(err).__name__}: {str(err).splitlines()[0][:160]}); try train.precision={other}", precision)
+    if _runs_in_float32_only(model, inputs):
+        return ConfigError("train.dtype", f"the forward pass of {target_name(model)} fails in float64 but runs in float32: "
+                           f"the model fixes its own dtype (e.g. it calls x.float()) ({type(err).__name__}: "
+                           f"{str(err).splitlines()[0][:160]}); use train.dtype=float32", "float64")
     return ConfigError("task.model._target_", said)
+
+
+def _runs_in_float32_only(model, inputs) -> bool:
+    """Whether a model with float64 parameters that just failed runs on a float32 copy of itself and its input."""
+    if not isinstance(inputs, torch.Tensor) or not any(p.dtype == torch.float64 for p in model.parameters()):
+        return False
+    try:
+        narrow = copy.deepcopy(model).float()
+        with torch.no_grad():
+            narrow(inputs.float() if inputs.is_floating_point() else inputs)
+        return True
+    except Exception:  # noqa: BLE001 - broken in float32 too, or not copyable: the model's own error stands
+        return False
 
 
 def forward_loss(model, loss, batch: dict, call=None) -> torch.Tensor:
@@ -93,7 +111,7 @@ def forward_loss(model, loss, batch: dict, call=None) -> torch.Tensor:
     try:
         out = forward()
     except Exception as err:  # noqa: BLE001 - any failure of user code is reported, not traced back
-        raise _forward_error(model, err, forward) from None
+        raise _forward_error(model, err, forward, batch["input"]) from None
     if not isinstance(out, torch.Tensor):
         raise ConfigError("task.model._target_", f"the forward pass of {target_name(model)} returned a "
                           f"{type(out).__name__}; the loss needs one tensor (return e.g. the logits only)")
