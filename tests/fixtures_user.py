@@ -29,6 +29,17 @@ class TinyNet(nn.Module):
         return self.out(self.activation(self.hidden(x)))
 
 
+class DropoutNet(TinyNet):
+    """TinyNet with a stock nn.Dropout after its hidden layer."""
+
+    def __init__(self, p: float = 0.3, **kw):
+        super().__init__(**kw)
+        self.drop = nn.Dropout(p)
+
+    def forward(self, x):
+        return self.out(self.drop(self.activation(self.hidden(x))))
+
+
 def blobs(size: int = 96, in_dim: int = 4, classes: int = 3, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
     """Gaussian inputs labelled by a fixed random linear map: the job's whole training set."""
     gen = torch.Generator().manual_seed(seed)

@@ -23,11 +23,11 @@ def test_robust_outliers():
     assert robust_outliers([float("nan")] * 4) == []  # all alike: nobody stands out
 
 
-@pytest.mark.parametrize("procs, backend", [(1, "local"), (2, "gloo")])
-def test_the_incident_names_the_worker_and_the_sample(tmp_path, procs, backend):
+@pytest.mark.parametrize("procs, backend, model", [(1, "local", "TinyNet"), (2, "gloo", "TinyNet"), (1, "local", "DropoutNet")])
+def test_the_incident_names_the_worker_and_the_sample(tmp_path, procs, backend, model):
     sampler = Sampler(SIZE, Layout(W, 1, B_MICRO, 1, "local"), SEED, "drop")
     bad = int(sampler.worker_batches(STEP, range(W))[0, WORKER, POSITION])
-    done = run_cli("run", "~task.model", "+task.model._target_=tests.fixtures_user.TinyNet", "+task.model.activation=relu", "~task.data",
+    done = run_cli("run", "~task.model", f"+task.model._target_=tests.fixtures_user.{model}", "+task.model.activation=relu", "~task.data",
                    "+task.data._target_=tests.fixtures_user.CorruptedBlobData", f"+task.data.bad={bad}",
                    f"layout.workers={W}", f"layout.procs={procs}", f"layout.backend={backend}", f"layout.micro_batch={B_MICRO}",
                    "optim.lr=0.05", "train.steps=10", "train.eval_every=0", "train.progress=false", f"hydra.run.dir={tmp_path}")
@@ -39,6 +39,7 @@ def test_the_incident_names_the_worker_and_the_sample(tmp_path, procs, backend):
     (outlier,) = workers["outliers"]
     assert outlier["samples"][POSITION] == bad and len(outlier["samples"]) == B_MICRO
     assert outlier["worst_samples"][0]["index"] == bad
-    # The mean of the workers' losses, each worker rerun alone, is the loss the run logged at that step.
+    # The mean of the workers' losses, each worker rerun alone, is the loss the run logged at that step
+    # (with stock dropout too: each sample gets the mask it had in the step).
     logged = read_scalars(tmp_path / "run.sqlite")["loss"][1][STEP]
     assert sum(workers["loss"]) / W == pytest.approx(float(logged), rel=1e-5)

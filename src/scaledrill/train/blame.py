@@ -29,6 +29,8 @@ import statistics
 
 import torch
 
+from scaledrill.nn.dropout import key_samples
+
 MODIFIED_Z = 3.5
 MAD_TO_SIGMA = 1.4826
 
@@ -78,6 +80,7 @@ class WorkerBlame:
             total, count, grads, per_sample = 0.0, 0.0, [torch.zeros_like(p) for p in t.params], []
             for batch in self.micro:
                 one = {k: x.view(V, -1, *x.shape[1:])[v] for k, x in batch.items()}
+                key_samples(model, one.get("index"), self.step)  # the masks this worker's samples had in the step
                 out = model(one["input"])
                 value = loss(out, one)
                 for g, d in zip(grads, torch.autograd.grad(value, t.params, allow_unused=True)):
