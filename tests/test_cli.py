@@ -118,3 +118,12 @@ def test_a_diverged_run_says_where_it_broke_and_how_to_replay(tmp_path):
     assert f"diverged after {summary['steps']} steps (loss spike at step" in done.stdout
     assert f"incident report: {summary['incidents'][0]}" in done.stdout
     assert f"scaledrill replay replay.from={run_dir} " in done.stdout  # replay picks the checkpoint before the trigger
+
+
+@pytest.mark.parametrize("backend, procs", [("local", 1), ("gloo", 2)])
+def test_an_unexpected_error_is_one_paragraph_with_the_status_of_a_failed_rank(tmp_path, backend, procs):
+    done = run_cli("run", "~task.model", "+task.model._target_=tests.zoo.FailsInEval", "layout.workers=2",
+                   f"layout.procs={procs}", f"layout.backend={backend}", "train.steps=2", "train.eval_every=1",
+                   "train.progress=false", f"hydra.run.dir={tmp_path}")
+    assert done.returncode == 5, done.stderr
+    assert "boom in eval" in done.stderr and "Traceback" not in done.stderr

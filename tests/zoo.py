@@ -162,3 +162,16 @@ class RowsLSTM(nn.Module):
     def forward(self, x):
         out, _ = self.lstm(x.reshape(x.shape[0], 8, 8))
         return self.head(out[:, -1])
+
+
+class FailsInEval(nn.Module):
+    """Trains, then raises in evaluation mode: a user bug no rule names."""
+
+    def __init__(self):
+        super().__init__()
+        self.fc = nn.Linear(64, 10)
+
+    def forward(self, x):
+        if not self.training:
+            raise RuntimeError("boom in eval")
+        return self.fc(x.reshape(x.shape[0], -1))

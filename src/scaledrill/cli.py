@@ -10,7 +10,7 @@ from hydra.core.hydra_config import HydraConfig
 
 import scaledrill.config.store  # noqa: F401  (the schemas, before any composition)
 from scaledrill.config.keys import composition_error, refuse_unknown
-from scaledrill.errors import ScaledrillError
+from scaledrill.errors import ScaledrillError, WorkerFailed
 
 CONFIG_DIR = str(Path(__file__).resolve().parent / "conf")  # shipped inside the package
 
@@ -50,6 +50,12 @@ def _app(verb: str):
                 raise
             print(f"scaledrill {verb}: error: {err}", file=sys.stderr)
             raise SystemExit(err.exit_code) from None
+        except Exception as err:  # noqa: BLE001 - no traceback for a user; the same status as a failed rank
+            if debug:
+                raise
+            print(f"scaledrill {verb}: error: {type(err).__name__}: {err} (unexpected: rerun with debug=true for the "
+                  f"traceback, and report it unless it points into your own model, data or loss)", file=sys.stderr)
+            raise SystemExit(WorkerFailed.exit_code) from None
         code = getattr(result, "exit_code", 0) if result is not None else 0
         if code:
             raise SystemExit(code)
