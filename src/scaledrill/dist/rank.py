@@ -77,8 +77,10 @@ def _stop_before_training(signum, frame):
 
 def _guard(child: int, run_dir: Path, rank: int) -> int:
     """The MPI rank's parent: forward stop signals, report a death by signal, exit as the child did."""
+    from scaledrill.dist.procs import send
+
     for sig in (signal.SIGINT, signal.SIGTERM):
-        signal.signal(sig, lambda signum, frame: os.kill(child, signum))
+        signal.signal(sig, lambda signum, frame: send(child, signum))  # the child may be gone already
     while True:
         try:
             _, wait_status = os.waitpid(child, 0)

@@ -93,6 +93,10 @@ def _store_blocks(store: Path) -> tuple[list[str], list[str]]:
             blocks.append(paragraph(f"Per-layer {label}: {shown} in every one of {len(layers)} layers at every one of "
                                     f"{len(steps)} logged steps (no figure: nothing changes).", "note"))  # fmt: skip
             continue
+        if len(steps) == 1:  # one column carries no heat: a table reads better
+            rows = [(layer, number(value)) for layer, value in zip(layers, np.asarray(matrix, dtype=float)[0])]
+            blocks.append(table(f"Per-layer {label} at step {steps[0]} (the one logged step)", ("layer", label), rows))
+            continue
         alt = f"Heatmap of per-layer {label} ({len(layers)} layers × {len(steps)} steps)"
         blocks.append(figure(fg.heatmap(f"Per-layer {label}", steps, layers, matrix, label), alt))
     events = read_events(store)

@@ -33,6 +33,9 @@ def check_section(directory: Path, source: str) -> Section:
     section.blocks.append(verdict(good, f"verdict: {doc.get('verdict', 'unknown')}"))
     if doc.get("tolerance_rule"):
         section.blocks.append(paragraph(f"Tolerance rule: {doc['tolerance_rule']}"))
+    floor = (doc.get("reference") or {}).get("floor")
+    if floor:
+        section.blocks.append(paragraph(f"Rounding floor: {floor.removeprefix('rounding floor: ')}.", "note"))
     rows, classes, trajectories = [], [], []
     for path in doc.get("paths", []):
         for layer in path.get("layers", []):
