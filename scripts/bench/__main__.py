@@ -33,7 +33,7 @@ PLAN = {
     "compress": ({"rounds": 9}, {"rounds": 3}),
     "telemetry": ({"rounds": 9}, {"rounds": 3}),
     "dist": ({"rounds": 40}, {"rounds": 8}),
-    "dist-large": ({"rounds": 12, "block": 3}, {"rounds": 4, "block": 2}),
+    "dist-large": ({"rounds": 10, "block": 3}, {"rounds": 4, "block": 2}),
     "memory": ({"sizes": [64, 256, 1024]}, {"sizes": [64, 256], "paths": ("vmap",)}),
     "startup": ({"rounds": 5}, {"rounds": 2}),
 }
