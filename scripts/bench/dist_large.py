@@ -45,8 +45,9 @@ def _child(rank: int, port: int, threads: int, rounds: int, block: int, out: str
         cases = {"engine": tr.step, "no_blame": bare.step, "ddp": ddp_step(tr)}
         times = interleave(cases, rounds, block=block, warmup=2, sync=dist.barrier, clock=time.perf_counter)
         if rank == 0:
-            Path(out).write_text(json.dumps({"ratio": ratios(times, "engine", "ddp"), "no_blame": ratios(times, "no_blame", "ddp"),
-                                             "ms": {k: ms(v) for k, v in times.items()}, "params": tr.grads.numel}))
+            result = {"ratio": ratios(times, "engine", "ddp"), "no_blame": ratios(times, "no_blame", "ddp"),
+                      "ms": {k: ms(v) for k, v in times.items()}, "params": tr.grads.numel}
+            Path(out).write_text(json.dumps(result))
         dist.barrier()
     finally:
         collective.close()

@@ -22,9 +22,9 @@ import torch
 
 from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.sync.buckets import bucketed_sum
-from scaledrill.sync.overlap import BucketStarts
 from scaledrill.sync.compress import NAMES, Round, build, dense_bytes
 from scaledrill.sync.feedback import ErrorFeedback
+from scaledrill.sync.overlap import BucketStarts
 from scaledrill.sync.path import per_worker_cause
 from scaledrill.sync.settings import KEYS, settings_of
 from scaledrill.sync.tree import tree_sum

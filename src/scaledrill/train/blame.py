@@ -134,7 +134,8 @@ class WorkerBlame:
 def _copy_into(copies: dict[str, torch.Tensor], live: dict[str, torch.Tensor]) -> dict[str, torch.Tensor]:
     """Copies of `live`; into the copies of the step before when they fit: a fresh copy of a large
     model is memory the kernel backs page by page on every step, several times the copy's own cost."""
-    if copies.keys() == live.keys() and all(copies[k].shape == t.shape and copies[k].dtype == t.dtype for k, t in live.items()):
+    fits = copies.keys() == live.keys() and all(copies[k].shape == t.shape and copies[k].dtype == t.dtype for k, t in live.items())
+    if fits:
         if copies:
             torch._foreach_copy_(list(copies.values()), [t.detach() for t in live.values()])
         return copies
