@@ -1,6 +1,6 @@
 """Benchmarks of the simulator against the physical limit, as interleaved ratios.
 
-    python scripts/bench [--quick] [--only overhead,paths,compress,telemetry,dist,memory,startup] [--threads 1] [--out bench.json]
+    python scripts/bench [--quick] [--only overhead,paths,compress,telemetry,dist,dist-large,memory,startup] [--threads 1] [--out bench.json]
 
 Each comparison runs its cases in alternating blocks after a warm-up and
 reports the median per-round ratio with its min–max and interquartile range,
@@ -18,12 +18,12 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))  # make `bench` importable (also in spawned children)
 
-from bench import distributed, memory, overhead, single, startup  # noqa: E402
+from bench import dist_large, distributed, memory, overhead, single, startup  # noqa: E402
 from bench.common import pin_threads  # noqa: E402
 from bench.table import show  # noqa: E402
 from bench.timing import use_clock  # noqa: E402
 
-SECTIONS = ("overhead", "paths", "compress", "telemetry", "dist", "memory", "startup")
+SECTIONS = ("overhead", "paths", "compress", "telemetry", "dist", "dist-large", "memory", "startup")
 
 # Rounds per comparison (full, quick). Loop steps are ~10x slower, so they get fewer.
 PLAN = {
@@ -33,6 +33,7 @@ PLAN = {
     "compress": ({"rounds": 9}, {"rounds": 3}),
     "telemetry": ({"rounds": 9}, {"rounds": 3}),
     "dist": ({"rounds": 40}, {"rounds": 8}),
+    "dist-large": ({"rounds": 10, "block": 3}, {"rounds": 4, "block": 2}),
     "memory": ({"sizes": [64, 256, 1024]}, {"sizes": [64, 256], "paths": ("vmap",)}),
     "startup": ({"rounds": 5}, {"rounds": 2}),
 }
@@ -49,6 +50,8 @@ def run_section(name: str, threads: int, plan: dict) -> list:
         return single.telemetry(**plan)
     if name == "dist":
         return distributed.run(threads, **plan)
+    if name == "dist-large":
+        return dist_large.run(threads, **plan)
     if name == "startup":
         return startup.run(**plan)
     return memory.run(threads, **plan)

@@ -1,9 +1,10 @@
 """Buckets: the flat vector travels in contiguous pieces of at most `sync.bucket_kib`.
 
-Pieces follow the flat vector as it is (parameter order, not reversed, and not
-cut at parameter edges): the sync runs after the last backward of a step, so
-there is no overlap with backward to win by reversing, and one all-reduce per
-bucket bounds the memory a collective holds while keeping calls few.
+Pieces follow the flat vector as it is (parameter order, not cut at parameter
+edges): one all-reduce per bucket bounds the memory a collective holds while
+keeping calls few. Where exact averaging of the fused path overlaps backward
+(overlap.py), the same pieces start from the last one down as backward finishes
+them, so both ways give the same sums.
 
 Steps, for rows [V, m] of one dtype:
 1. sum the V rows inside the process (in that dtype);

@@ -23,6 +23,7 @@ import torch
 from scaledrill.sync.buckets import bucketed_sum
 from scaledrill.sync.compress import Round, build, dense_bytes
 from scaledrill.sync.feedback import ErrorFeedback
+from scaledrill.sync.overlap import BucketStarts
 from scaledrill.sync.path import per_worker_cause
 from scaledrill.sync.settings import settings_of
 from scaledrill.sync.tree import tree_sum
@@ -51,14 +52,34 @@ class SyncLayer:
     def _mean(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
         return self._sum(rows, in_place).div_(self.layout.workers)
 
-    def reduce(self, local: torch.Tensor, workers: range, step: int, donate: bool = False) -> torch.Tensor:
+    @staticmethod
+    def _summed(rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
+        """The `_sum` of a row that `bucket_starts` already summed over the processes."""
+        return rows[0] if in_place else rows[0].clone()
+
+    def _summed_mean(self, rows: torch.Tensor, in_place: bool = False) -> torch.Tensor:
+        return self._summed(rows, in_place).div_(self.layout.workers)
+
+    def bucket_starts(self, spans: list[tuple[int, int]], itemsize: int) -> BucketStarts | None:
+        """Per-bucket all-reduces a caller starts during backward (overlap.py), where they give
+        the very sum `reduce` would: exact averaging of a per-process sum over P > 1 processes.
+        None where they would not (a compressor, the bitwise tree, one process)."""
+        if self.bitwise or self.per_worker or not self.compressor.lossless or self.collective.size == 1:
+            return None
+        return BucketStarts(self.collective, spans, itemsize, self.bucket_kib)
+
+    def reduce(self, local: torch.Tensor, workers: range, step: int, donate: bool = False, summed: bool = False) -> torch.Tensor:
         """The global average of this step; `donate` lets the layer overwrite `local`
-        (the engine's fused path does: it never reads `local` again)."""
+        (the engine's fused path does: it never reads `local` again). `summed`: `local`
+        already holds the sum over processes (the caller ran `bucket_starts`' all-reduces)."""
         want = len(workers) if self.per_worker else 1
         if local.dim() != 2 or local.shape[1] != self.n or local.shape[0] not in (want, len(workers)):
             raise ValueError(f"expected local of shape [{want}, {self.n}], got {tuple(local.shape)}")
+        if summed and (self.bitwise or self.per_worker or not self.compressor.lossless):
+            raise ValueError("summed=True needs exact averaging of a per-process sum (see bucket_starts)")
         W = self.layout.workers
-        rnd = Round(step, workers, W, self.seed, self._sum, self._mean, donate and not self.fidelity_reads_local)
+        total, mean = (self._summed, self._summed_mean) if summed else (self._sum, self._mean)
+        rnd = Round(step, workers, W, self.seed, total, mean, donate and not self.fidelity_reads_local)
         out, self.state = self.compressor.update(local, self.state, rnd)  # 1. and 2.
         self.calls += 1
         full = dense_bytes(self.n, local.dtype)

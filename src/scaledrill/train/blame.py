@@ -6,8 +6,9 @@ rehearsal knows each worker's sample indices, so it can answer exactly.
 
 How:
 1. Before every step the engine hands over the step's micro-batches; the
-   parameters and buffers are copied (one copy of the model, as the layer
-   statistics already take every `layer_every` steps).
+   buffers are copied, and the parameters before the optimizer moves them (one
+   copy of the model, as the layer statistics already take every `layer_every`
+   steps, into the same memory every step).
 2. When a detector fires, every process puts the copy back, runs each of its
    workers alone (the per-worker loop path, whatever path the run used: it runs
    any module), reads the worker's mean loss over its k·b samples, the norm of the
@@ -55,10 +56,14 @@ class WorkerBlame:
         self.saved_buffers: dict[str, torch.Tensor] = {}
 
     def before(self, step: int, micro: list[dict]) -> None:
-        """Step 1."""
+        """Step 1, before the forward passes (they move the running statistics)."""
         self.step, self.micro = step, micro
-        self.saved = [p.detach().clone() for p in self.trainer.params]
-        self.saved_buffers = {n: b.detach().clone() for n, b in self.trainer.model.named_buffers()}
+        self.saved_buffers = _copy_into(self.saved_buffers, dict(self.trainer.model.named_buffers()))
+
+    def keep_params(self) -> None:
+        """Step 1, for the parameters: any time before the optimizer moves them. The engine
+        calls it while the gradient's all-reduce is in flight, where a process waits anyway."""
+        self.saved = list(_copy_into(dict(enumerate(self.saved)), dict(enumerate(self.trainer.params))).values())
 
     def _swap(self, params: list[torch.Tensor], buffers: dict[str, torch.Tensor]) -> None:
         named = dict(self.trainer.model.named_buffers())
@@ -127,6 +132,17 @@ class WorkerBlame:
             "grad_norm": norms,
             "outliers": named,
         }
+
+
+def _copy_into(copies: dict[str, torch.Tensor], live: dict[str, torch.Tensor]) -> dict[str, torch.Tensor]:
+    """Copies of `live`; into the copies of the step before when they fit: a fresh copy of a large
+    model is memory the kernel backs page by page on every step, several times the copy's own cost."""
+    fits = copies.keys() == live.keys() and all(copies[k].shape == t.shape and copies[k].dtype == t.dtype for k, t in live.items())
+    if fits:
+        if copies:
+            torch._foreach_copy_(list(copies.values()), [t.detach() for t in live.values()])
+        return copies
+    return {k: t.detach().clone() for k, t in live.items()}
 
 
 def _per_sample(loss, out: torch.Tensor, batch: dict) -> list[float]:

@@ -36,6 +36,7 @@ from scaledrill.train import checkpoint
 from scaledrill.train.blame import WorkerBlame
 from scaledrill.train.grads import GradComputer, flatten_params
 from scaledrill.train.memory import check_fits
+from scaledrill.train.overlap import OverlappedFused
 from scaledrill.train.precision import Precision
 from scaledrill.train.signals import StopFlag
 
@@ -73,6 +74,7 @@ class Trainer:
         self.precision = Precision(cfg.train)  # autocast, 16-bit accumulation, loss scaling
         self.grads.accum_dtype = self.precision.accum_dtype
         self.path = self._choose_path(cfg.train.grads)
+        self.overlap = self._overlap()
         check_fits(self)  # before the first step allocates
         self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
@@ -106,6 +108,16 @@ class Trainer:
             self.grads.announce_fallback()
             return "loop"
         return chosen
+
+    def _overlap(self) -> OverlappedFused | None:
+        """The fused path with its all-reduce started during backward (train/overlap.py), where the
+        sync allows it and the gradient is summed in the dtype it is synced in."""
+        accum = self.precision.accum_dtype
+        if self.path != "fused" or (accum is not None and accum != self.dtype):
+            return None
+        itemsize = torch.empty((), dtype=self.dtype).element_size()
+        starts = self.sync.bucket_starts(self.grads.flat.spans(), itemsize)
+        return OverlappedFused(self.grads, starts, self.dtype) if starts is not None else None
 
     # -- one step ------------------------------------------------------------
     def _micro_batches(self, step: int) -> list[dict]:
@@ -170,14 +182,19 @@ class Trainer:
         path = "vmap" if noise and self.path == "fused" else self.path
         self.grads.step = step
         S = self.precision.loss_scale  # 1 unless the loss is scaled
+        overlapped = self.overlap is not None and path == "fused"
         with self.precision.autocast():
-            result = self.grads.compute(micro, scale * S, path)
+            result = self.overlap.compute(micro, scale * S) if overlapped else self.grads.compute(micro, scale * S, path)
         result.local = self.precision.widen(result.local, self.dtype)
         flag = getattr(self, "stop_flag", None)
         local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
         shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
-        average = self.sync.reduce(result.local, self.workers, step, donate=True)
+        if self.blame is not None:
+            self.blame.keep_params()  # while the all-reduce is in flight
+        if overlapped:
+            self.overlap.wait()  # the buckets' all-reduces, started during backward
+        average = self.sync.reduce(result.local, self.workers, step, donate=True, summed=overlapped)
         scalars = shared()
         W = self.layout.workers
         small_sq = big_sq = None

@@ -27,6 +27,7 @@ Every path accumulates over the k micro-steps and returns flat vectors in
 `model.parameters()` order.
 """
 
+import math
 import warnings
 from dataclasses import dataclass
 
@@ -234,6 +235,10 @@ class FlatLayout:
             self.spec.append((tuple(p.shape), _contiguous_strides(p.shape), offset))
             offset += p.numel()
         self.numel = offset
+
+    def spans(self) -> list[tuple[int, int]]:
+        """(offset, numel) of each parameter, in order."""
+        return [(offset, math.prod(shape)) for shape, _, offset in self.spec]
 
     def views(self, flat: torch.Tensor) -> list[torch.Tensor]:
         """Views of the contiguous 1-d `flat` shaped like each parameter, in order."""
