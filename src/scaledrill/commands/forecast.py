@@ -28,6 +28,7 @@ import torch
 from omegaconf import OmegaConf
 from rich.console import Console
 
+from scaledrill.config import rules
 from scaledrill.config.validate import validated_job
 from scaledrill.errors import ConfigError, is_number, is_whole
 from scaledrill.forecast import flops_per_sample, forecast_json, param_bytes, project_rungs, render_forecast, validate
@@ -84,10 +85,7 @@ def run_compression(value: str) -> float | None:
 
 def _batches(cfg) -> list[dict]:
     batches = OmegaConf.to_container(cfg.batches) if cfg.get("batches") is not None else None
-    if not isinstance(batches, list) or not batches or not all(
-        is_whole(b) and b >= 1 for b in batches
-    ):
-        raise ConfigError("batches", "must be a non-empty list of whole global batches >= 1", batches)
+    rules.check_forecast_batches(batches)
     return [{"global_batch": b, "steps_to_target": None} for b in batches]
 
 

@@ -25,6 +25,8 @@ place, sync/path.py; the rules here ask it.
 """
 
 import math
+import re
+import shlex
 from dataclasses import asdict
 from typing import Any, Callable
 
@@ -419,6 +421,25 @@ def check_replay(node) -> None:
     if OmegaConf.is_missing(node, "from") or node.get("from") is None:
         raise ConfigError("replay.from", "is required: a checkpoint file or a run directory")
     apply("replay", node, {"departure_rtol": (lambda v: is_number(v) and v >= 0, "must be a number >= 0")})
+    variants = node.get("variants")
+    for name, value in (OmegaConf.to_container(variants, resolve=True) if variants is not None else {}).items():
+        key = f"replay.variants.{name}"
+        if not VARIANT_NAME.match(str(name)) or name == "original":
+            raise ConfigError(key, "a variant name is letters, digits, - or _, and not 'original' (that one is always run)", name)
+        items = shlex.split(value) if isinstance(value, str) else value
+        if not isinstance(items, list) or not all(isinstance(s, str) and ("=" in s or s.startswith("~")) for s in items):
+            raise ConfigError(key, "must be a list of overrides like schedule.warmup_steps=50", value)
+        if any(s.split("=")[0].lstrip("+~") in ("resume", "train.steps") for s in items):
+            raise ConfigError(key, "resume and train.steps are set by the replay (replay.from, replay.steps)", value)
+
+
+VARIANT_NAME = re.compile(r"^[A-Za-z0-9_-]+$")  # replay.variants.<name>
+
+
+def check_forecast_batches(batches) -> None:
+    """`batches` of `scaledrill forecast` when no ladder or job gives them."""
+    if not isinstance(batches, list) or not batches or not all(is_whole(b) and b >= 1 for b in batches):
+        raise ConfigError("batches", "must be a non-empty list of whole global batches >= 1", batches)
 
 
 def check_adopt(node) -> None:
