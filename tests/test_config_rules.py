@@ -105,6 +105,9 @@ def test_a_bad_ladder_setting_names_its_key(overrides, key):
 @pytest.mark.parametrize("verb, overrides, key", [
     ("replay", ["replay.from=somewhere", "replay.departure_rtol=-1"], "replay.departure_rtol"),
     ("adopt", ["adopt.from=model.pt", "adopt.step=-1"], "adopt.step"),
+    ("replay", ["replay.from=somewhere", "+replay.variants.original='optim.lr=1'"], "replay.variants.original"),
+    ("replay", ["replay.from=somewhere", "+replay.variants.a=[lr]"], "replay.variants.a"),
+    ("replay", ["replay.from=somewhere", "+replay.variants.b='train.steps=9'"], "replay.variants.b"),
 ])
 def test_a_bad_replay_or_adopt_setting_names_its_key(verb, overrides, key):
     with pytest.raises(ConfigError) as err:
@@ -182,3 +185,11 @@ def test_every_sync_rule_names_a_key_some_compressor_takes():
     for name in ("exact", "topk", "randk", "qsgd", "powersgd", "sign"):
         declared |= set(make_config(f"sync={name}").sync)
     assert set(rules.SYNC) <= declared
+
+
+@pytest.mark.parametrize("batches", [[], [0, 64], [64.5], "64", None])
+def test_forecast_batches_are_whole_and_positive(batches):
+    with pytest.raises(ConfigError) as err:
+        rules.check_forecast_batches(batches)
+    assert err.value.key == "batches"
+    rules.check_forecast_batches([64, 4096])  # fine: no error
