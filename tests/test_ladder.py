@@ -80,7 +80,9 @@ def test_ladder_json_and_the_two_modes(tmp_path):
     out = ladder_verb(ladder_cfg(*SMALL), tmp_path / "workers")
     saved = json.loads((tmp_path / "workers" / "ladder.json").read_text())
     assert saved == json.loads(json.dumps(out.payload)) and out.exit_code == 0
-    assert set(saved) == {"grow", "goal", "goal_source", "rungs", "fit", "noise_scale_measured", "agreement", "search"}
+    assert set(saved) == {"grow", "goal", "goal_source", "rungs", "fit", "noise_scale_measured", "agreement", "search",
+                          "check_every", "first_check"}
+    assert saved["first_check"] == []  # every rung measured past its first check
     rungs = saved["rungs"]
     assert [r["global_batch"] for r in rungs] == [4, 8, 16] and [r["workers"] for r in rungs] == [2, 4, 8]
     assert [r["lr"] for r in rungs] == pytest.approx([0.2, 0.4, 0.8])  # linear rule, Goyal et al. 2017
@@ -201,3 +203,22 @@ def test_a_signal_stops_the_ladder_instead_of_starting_the_next_rung(tmp_path):
     assert not stray
     assert list((tmp_path / "rung-B0004" / "checkpoints").glob("*.pt"))  # the interrupted rung saved its step
     assert not (tmp_path / "rung-B0008").exists() and not (tmp_path / "ladder.json").exists()
+
+
+def test_rungs_that_reach_the_goal_at_the_first_check_stay_out_of_the_fit():
+    from scaledrill.ladder.gather import ladder_payload
+    from scaledrill.ladder.show import caption_lines
+
+    def rung(batch, steps):
+        return {"global_batch": batch, "steps_to_target": steps, "diverged": False, "noise_scale": None}
+
+    goal = {"metric": "train_loss", "value": 0.1, "reached_when": "below"}
+    # An easy goal: every rung is done at the first check, so steps-to-target is only "<= 10" everywhere.
+    easy = ladder_payload("workers", goal, "ladder.goal", [rung(b, 10) for b in (16, 32, 64)], None, check_every=10)
+    assert easy["fit"] is None and easy["first_check"] == [16, 32, 64]
+    assert any("reached the goal at the first check (step 10)" in line for line in caption_lines(easy))
+    # Measured rungs still fit: S = 20(1 + 64/B) at B = 32, 64, 128 gives 60, 40, 30; B = 512 is censored.
+    mixed = ladder_payload("workers", goal, "ladder.goal", [rung(32, 60), rung(64, 40), rung(128, 30), rung(512, 10)],
+                           None, check_every=10)
+    assert mixed["first_check"] == [512]
+    assert mixed["fit"]["s_min"] == pytest.approx(20, rel=1e-6) and mixed["fit"]["b_crit"] == pytest.approx(64, rel=1e-6)

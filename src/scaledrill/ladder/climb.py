@@ -175,4 +175,4 @@ def _collected(job, cfg, rung: Rung, ladder_dir: Path) -> tuple[dict, dict | Non
 def ladder_json(plan: Plan, results: list[dict], searches: dict | None) -> dict:
     """The ladder.json payload (gather.py: also for rungs trained as separate jobs)."""
     limits = {rung.global_batch: rung.limit for rung in plan.rungs}
-    return ladder_payload(plan.grow, plan.goal.to_json(), plan.goal_source, results, searches, limits)
+    return ladder_payload(plan.grow, plan.goal.to_json(), plan.goal_source, results, searches, limits, plan.check_every)

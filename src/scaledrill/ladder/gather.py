@@ -37,10 +37,16 @@ def agreement(b_crit: float | None, noise: float | None) -> dict | None:
 
 
 def ladder_payload(grow: str, goal: dict, goal_source: str, results: list[dict], searches: dict | None,
-                   limits: dict | None = None) -> dict:
-    """The ladder.json payload: rungs by batch, the fit over rungs that reached the goal."""
+                   limits: dict | None = None, check_every: int | None = None) -> dict:
+    """The ladder.json payload: rungs by batch, the fit over rungs that reached the goal.
+
+    A rung that reached the goal at its first check (step `check_every`) only says "at most that
+    many steps": it is left out of the fit (`first_check` lists them), or every rung of an easy
+    goal would sit at the same step and the fit would read a plateau that was never measured."""
     rungs = sorted(results, key=lambda r: r["global_batch"])
     hit = [r for r in rungs if r["steps_to_target"] and not r["diverged"] and not r.get("error")]
+    first = [r for r in hit if check_every and r["steps_to_target"] <= check_every]
+    hit = [r for r in hit if r not in first]
     fit = fit_tradeoff([r["global_batch"] for r in hit], [r["steps_to_target"] for r in hit]) if len(hit) >= 2 else None
     for r in rungs:
         r["regime"] = regime(r["global_batch"], fit) if fit and r in hit else None  # a missed goal has no regime
@@ -53,6 +59,8 @@ def ladder_payload(grow: str, goal: dict, goal_source: str, results: list[dict],
         "goal": goal,
         "goal_source": goal_source,
         "rungs": rungs,
+        "check_every": check_every,
+        "first_check": [r["global_batch"] for r in first],
         "fit": None if fit is None else {k: _finite(getattr(fit, k)) for k in ("s_min", "e_min", "b_noise", "b_crit", "residual")},
         "noise_scale_measured": measured,
         "agreement": agreement(None if fit is None else _finite(fit.b_crit), measured),
@@ -74,4 +82,4 @@ def gather(docs: list[dict]) -> dict:
             searches.setdefault(batch, entry)
     first = docs[0]
     return ladder_payload(first.get("grow"), first.get("goal"), first.get("goal_source", "ladder.goal"),
-                          list(rungs.values()), searches or None)
+                          list(rungs.values()), searches or None, check_every=first.get("check_every"))

@@ -63,9 +63,15 @@ def caption_lines(payload: dict) -> list[str]:
     source = payload.get("goal_source") or "ladder.goal"
     lines = [] if source == "ladder.goal" else [source]
     fit, noise, agree = payload["fit"], payload["noise_scale_measured"], payload.get("agreement")
+    first = payload.get("first_check") or []
+    if first:
+        lines.append(f"B={', '.join(str(b) for b in first)} reached the goal at the first check (step "
+                     f"{payload['check_every']}): steps-to-target is only known to be at most that, so the fit leaves "
+                     "them out; lower ladder.check_every or set a harder goal to measure them")
     if not fit:
         if payload["goal"]["value"] is not None:
-            lines.append("no fit: fewer than two rungs reached the goal")
+            lines.append("no fit: fewer than two rungs reached the goal after their first check" if first
+                         else "no fit: fewer than two rungs reached the goal")
         return lines
     lines.append(f"S_min={_g(fit['s_min'])}  E_min={_g(fit['e_min'])}  B_crit={_g(fit['b_crit'])}  "
                  f"measured noise scale (median)={_g(noise)}")  # fmt: skip
@@ -77,7 +83,7 @@ def caption_lines(payload: dict) -> list[str]:
             "lr at the large rungs, and trust neither number alone."
         )
     elif agree:
-        lines.append(f"B_crit and the measured noise scale agree within {agree['ratio']:.2g}× (McCandlish et al. 2018)")
+        lines.append(f"B_crit and the measured noise scale agree within {agree['ratio']:.3g}× (McCandlish et al. 2018)")
     return lines
 
 

@@ -197,9 +197,12 @@ def ladder_verdict(doc: dict) -> tuple[bool | None, str, str]:
     reached = [r for r in rungs if r.get("steps_to_target") and not r.get("diverged")]
     broke = [r["global_batch"] for r in rungs if r.get("diverged") or r.get("error")]
     tail = f"; diverged or failed at B={', '.join(str(b) for b in broke)}" if broke else ""
+    first = doc.get("first_check") or []
     if not fit or fit.get("b_crit") is None:
+        why = (f"; B={', '.join(str(b) for b in first)} reached it at the first check (step {doc.get('check_every')}), "
+               "which only bounds their steps: lower ladder.check_every or set a harder goal") if first else ""
         return None, "no fit", (f"{len(reached)} of {len(rungs)} rungs reached the target: too few to place the "
-                                f"critical batch{tail}.")  # fmt: skip
+                                f"critical batch{why}{tail}.")  # fmt: skip
     b_crit = fit["b_crit"]
     past = [r["global_batch"] for r in rungs if r.get("regime") in ("diminishing returns", "plateau")]
     where = (f"scaling stops paying from B={past[0]} (steps no longer halve when the batch doubles)" if past
