@@ -17,6 +17,8 @@ from pathlib import Path
 
 import torch
 from omegaconf import OmegaConf
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn
 
 from scaledrill.check import output
 from scaledrill.check.diagnose import diagnose
@@ -55,16 +57,30 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
         kept = not cfg.train.convert_batchnorm
         print(runner.model_note + ("; BatchNorm in the reference only (train.convert_batchnorm=false keeps the paths' stock BatchNorm)" if kept else ""))
 
-    ref = runner.reference()  # 2.
-    if runner.rounds_coarser():  # the model's own float32 rounding sets the least tolerance (tolerance.py)
-        tol = floor_from(tol, runner.reference(dtype=torch.float32), ref)
-        if note := floor_note(tol, ref):
-            print(note)
-            reference["floor"] = note
-    runs = {name: runner.run(name) for name in plan}  # 3.
-    results = [compare(name, traj, ref, tol) for name, traj in runs.items()]  # 4.
-    failing = [r for r in results if not r.ok]
-    findings = diagnose(runner, ref, tol, failing, runs) if failing else []  # 5.
+    coarser = runner.rounds_coarser()
+    with Progress(TextColumn("[bold]check[/] {task.description}"), BarColumn(), MofNCompleteColumn(),
+                  TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
+        work = bar.add_task("reference", total=1 + coarser + len(plan))
+        ref = runner.reference()  # 2.
+        bar.advance(work)
+        if coarser:  # the model's own float32 rounding sets the least tolerance (tolerance.py)
+            bar.update(work, description="reference in float32 (rounding floor)")
+            tol = floor_from(tol, runner.reference(dtype=torch.float32), ref)
+            bar.advance(work)
+        runs = {}
+        for name in plan:  # 3.
+            bar.update(work, description=name)
+            runs[name] = runner.run(name)
+            bar.advance(work)
+        results = [compare(name, traj, ref, tol) for name, traj in runs.items()]  # 4.
+        failing = [r for r in results if not r.ok]
+        findings = []
+        if failing:  # 5.
+            bar.update(work, description="naming the cause (reruns of the paths that differ)")
+            findings = diagnose(runner, ref, tol, failing, runs)
+    if coarser and (note := floor_note(tol, ref)):
+        print(note)
+        reference["floor"] = note
     output.show(results, skipped, findings)  # 6.
     report = output.save(run_dir, results, skipped, findings, reference)
     return CheckResult(0 if not failing else 1, report)
