@@ -1,11 +1,12 @@
 """The command line as a user meets it: verbs, Hydra overrides, clear errors."""
 
 import json
+import subprocess
 import textwrap
 
 import pytest
 
-from conftest import run_cli
+from conftest import SCALEDRILL, run_cli
 
 QUICK = ("train.steps=3", "train.progress=false", "layout.workers=4", "layout.micro_batch=8", "train.eval_every=0")
 
@@ -35,6 +36,15 @@ def test_unknown_verb_and_usage():
     done = run_cli("train")
     assert done.returncode == 2 and "unknown verb 'train'" in done.stderr
     assert run_cli("--help").returncode == 0
+
+
+def test_verb_help_is_in_our_words(tmp_path):
+    done = subprocess.run([*SCALEDRILL, "check", "--help"], capture_output=True, text=True, timeout=120, cwd=tmp_path)
+    assert done.returncode == 0, done.stderr
+    lines = done.stdout.splitlines()
+    assert lines[0] == "scaledrill check: prove accumulation, virtual workers and processes match the true batch"
+    assert "usage: scaledrill check [key=value ...]" in done.stdout and "tolerance_scale: 1.0" in done.stdout
+    assert "powered by Hydra" not in done.stdout and not any(tmp_path.iterdir())  # help writes nothing
 
 
 def test_cfg_job_prints_the_resolved_config():

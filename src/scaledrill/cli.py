@@ -106,6 +106,9 @@ def main(argv: list[str] | None = None) -> None:
             rest.insert(0, f"path=[{quoted}]")
     if verb == "run":
         _claim_before_hydra(rest)
+    if {"--help", "-h"} & set(rest):  # Hydra's help, in our words (config/store.py)
+        rest += ["hydra/help=scaledrill", f"hydra.help.app_name='scaledrill {verb}'",
+                 f"hydra.help.header='scaledrill {verb}: {VERBS[verb][0]}'"]
     sys.argv = [f"scaledrill {verb}", *rest]
     os.environ["HYDRA_FULL_ERROR"] = "1"  # Hydra raises its errors to us instead of printing them in its words
     try:

@@ -12,8 +12,22 @@ from scaledrill.config.schema import GROUPS, RunConfig, TaskConfig
 from scaledrill.config.verbs_schema import AdoptRoot, CheckRoot, ClusterConfig, ForecastRoot, LadderRoot, ReplayRoot, ReportRoot
 
 
+HELP = {  # `scaledrill VERB --help` in our words; the CLI passes app_name and header per verb
+    "app_name": "scaledrill",
+    "header": "",
+    "footer": "",
+    "template": "${hydra.help.header}\n\nusage: ${hydra.help.app_name} [key=value ...]   (Hydra overrides: key=value changes a "
+                "key, +key=value adds one, group=option picks an option, -m sweeps comma-separated values)\n\n"
+                "== Option groups (group=option; base_* are the schemas the options build on) ==\n$APP_CONFIG_GROUPS\n"
+                "== This verb's configuration with its defaults ==\n$CONFIG\n"
+                "Every key's type and default: scaledrill/config/schema.py and verbs_schema.py; the rules on their values: "
+                "scaledrill/config/rules.py; each verb: the README.",
+}
+
+
 def register() -> None:
     store = ConfigStore.instance()
+    store.store(group="hydra/help", name="scaledrill", node=HELP)
     for group, schemas in GROUPS.items():
         for name, node in schemas.items():
             if node is TaskConfig:  # stored untyped, so `~task.model` can swap in a model of the user's own
