@@ -183,3 +183,10 @@ def test_initial_rise_fires_before_any_window_is_ready():
     resumed = InitialRise(factor=2.0)
     resumed.load_state_dict(InitialRise(factor=2.0, initial=[13.1, 12.9, 20.0]).state_dict())
     assert resumed.observe(9, {"loss": 26.3}) is not None
+    # A run taken over at step 12 (adopt: no detector state) starts near its converged loss: the rule
+    # against the start of training does not apply, and its state says so across a resume.
+    adopted = InitialRise(factor=3.0)
+    assert [adopted.observe(12 + i, {"loss": v}) for i, v in enumerate([0.03, 0.028, 0.035, 0.12, 0.26])] == [None] * 5
+    again = InitialRise(factor=3.0)
+    again.load_state_dict(adopted.state_dict())
+    assert again.off and again.observe(20, {"loss": 0.5}) is None

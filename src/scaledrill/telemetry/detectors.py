@@ -182,11 +182,17 @@ class InitialRise:
     arm: int = 3  # the reference is the median of the first `arm` finite losses: one lucky first batch is not it
     initial: list[float] = field(default_factory=list)
     fired: int = 0
+    off: bool = False  # first seen after step 0 (an adopted checkpoint): its losses are not the start of training
 
     def observe(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
-        if value is None or not math.isfinite(value):
-            return None  # NonFinite's business
+        if value is None or not math.isfinite(value) or self.off:
+            return None  # NonFinite's business, or a run that did not start here
+        if not self.initial and step > 0:
+            # A run taken over mid-training (adopt) starts near its converged loss, where noise alone
+            # moves a small loss by several times; the windowed detectors watch it once they fill.
+            self.off = True
+            return None
         if len(self.initial) < self.arm:
             self.initial.append(value)
             return None
@@ -200,10 +206,10 @@ class InitialRise:
         return None
 
     def state_dict(self) -> dict:
-        return {"initial": list(self.initial), "fired": self.fired}
+        return {"initial": list(self.initial), "fired": self.fired, "off": self.off}
 
     def load_state_dict(self, state: dict) -> None:
-        self.initial, self.fired = list(state["initial"]), state["fired"]
+        self.initial, self.fired, self.off = list(state["initial"]), state["fired"], bool(state.get("off", False))
 
 
 @dataclass
