@@ -103,6 +103,19 @@ def test_check_passes(name, tmp_path):
     assert result.exit_code == 0, json.dumps(result.report["paths"], indent=1)
 
 
+def test_a_stacked_gru_with_dropout_passes_check_with_its_kernel_dropout_off(tmp_path):
+    cfg = make_config(*model_overrides("StackedGRU"), f"layout.workers={W}", f"layout.micro_batch={B_MICRO}",
+                      "check.steps=2", "check.paths=[accumulation,fused,loop]", name="check")
+    result = check_verb(cfg, tmp_path)
+    assert result.exit_code == 0, json.dumps(result.report["paths"], indent=1)
+    from scaledrill.nn.stock import adapt_model
+    from tests.zoo import StackedGRU
+
+    model, note = adapt_model(StackedGRU(), seed=0)
+    assert model.gru.dropout == 0.0 and "between-layer dropout set to 0 in gru" in note
+    assert trainer_for("StackedGRU").model.gru.dropout == 0.0  # the engine converts it too
+
+
 def test_check_over_gloo_processes_with_stock_batchnorm(tmp_path):
     done = run_cli("check", *model_overrides("ConvBatchNorm"), "layout.workers=4", "layout.micro_batch=4",
                    "check.steps=2", "check.paths=[processes]", "check.backends=[gloo]", f"hydra.run.dir={tmp_path}")

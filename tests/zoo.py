@@ -175,3 +175,16 @@ class FailsInEval(nn.Module):
         if not self.training:
             raise RuntimeError("boom in eval")
         return self.fc(x.reshape(x.shape[0], -1))
+
+
+class StackedGRU(nn.Module):
+    """The 8 image rows through a two-layer stock GRU with between-layer dropout (drawn inside torch's kernel)."""
+
+    def __init__(self, dropout: float = 0.2):
+        super().__init__()
+        self.gru = nn.GRU(8, 16, num_layers=2, dropout=dropout, batch_first=True)
+        self.head = nn.Linear(16, 10)
+
+    def forward(self, x):
+        out, _ = self.gru(x.reshape(x.shape[0], 8, 8))
+        return self.head(out[:, -1])

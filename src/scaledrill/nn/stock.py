@@ -8,8 +8,9 @@ simulation depend on the layout:
   batch normalization, Hoffer, Hubara, Soudry 2017, "Train longer, generalize better");
 - nn.Dropout draws its mask from torch's generator, whose state depends on how many
   draws came before; each becomes a SampleDropout keyed on the sample (dropout.py);
-- MultiheadAttention's attention-weight dropout is drawn inside torch's attention
-  kernel, where no key can reach: it is set to 0 and said so.
+- MultiheadAttention's attention-weight dropout and the between-layer dropout of a
+  stacked RNN, GRU or LSTM are drawn inside torch's kernels, where no key can reach:
+  they are set to 0 and said so.
 
 `adapt_model` returns one line saying what changed (empty when nothing did).
 """
@@ -55,7 +56,7 @@ def adapt_model(model: nn.Module, seed: int, batchnorm: bool = True, dropout: bo
     """Convert `model`'s stock BatchNorm (when `batchnorm`) and Dropout (when `dropout`) in place; returns (model, note)."""
     if isinstance(model, STOCK_BATCHNORM + (nn.Dropout,)):
         model = nn.Sequential(model)  # a bare module: give it a parent to be replaced in
-    converted_bn, converted_drop, attention = [], [], []
+    converted_bn, converted_drop, attention, recurrent = [], [], [], []
     dims = _batch_dims(model)
     for name, m in list(model.named_modules()):
         if batchnorm and isinstance(m, STOCK_BATCHNORM):
@@ -67,6 +68,9 @@ def adapt_model(model: nn.Module, seed: int, batchnorm: bool = True, dropout: bo
         elif dropout and isinstance(m, nn.MultiheadAttention) and m.dropout > 0:
             m.dropout = 0.0
             attention.append(name)
+        elif dropout and isinstance(m, nn.RNNBase) and m.dropout > 0:
+            m.dropout = 0.0
+            recurrent.append(name)
     parts = []
     if converted_bn:
         parts.append(f"per-worker BatchNorm statistics (GhostBatchNorm) for {', '.join(converted_bn)}")
@@ -74,6 +78,9 @@ def adapt_model(model: nn.Module, seed: int, batchnorm: bool = True, dropout: bo
         parts.append(f"sample-keyed dropout masks for {', '.join(converted_drop)}")
     if attention:
         parts.append(f"attention-weight dropout set to 0 in {', '.join(attention)} (drawn inside torch's attention "
+                     "kernel, which no sample key reaches)")
+    if recurrent:
+        parts.append(f"between-layer dropout set to 0 in {', '.join(recurrent)} (drawn inside torch's recurrent "
                      "kernel, which no sample key reaches)")
     note = ("model: " + "; ".join(parts)) if parts else ""
     return model, note
