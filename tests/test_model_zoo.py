@@ -265,3 +265,12 @@ def test_rounding_floor_is_four_times_the_float32_distance_per_module():
     outside = Trajectory(names, [one, one, vec([1.0, 1.001])], [[one] * 3])
     assert compare("p", inside, ref, tol).ok  # module a: up to 4x its own float32 distance, weight and bias alike
     assert not compare("p", outside, ref, tol).ok  # module b had no such distance: the rule holds
+
+
+def test_unkeyed_noise_is_named_as_randomness_and_not_blamed_on_the_loss(tmp_path):
+    cfg = make_config(*model_overrides("NoisyInput"), f"layout.workers={W}", f"layout.micro_batch={B_MICRO}",
+                      "layout.accum=2", "check.steps=1", "check.paths=[accumulation]", name="check")
+    result = check_verb(cfg, tmp_path)
+    causes = [f["cause"] for f in result.report["diagnosis"]]
+    assert result.exit_code == 1 and causes and causes[0].startswith("random draws in the forward pass")
+    assert not any(c.startswith("loss normalisation") for c in causes)  # the loss is a plain sum: judged on one output

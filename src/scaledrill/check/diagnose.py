@@ -35,16 +35,11 @@ from scaledrill.check.tolerance import Tolerance, compare, compare_grads
 from scaledrill.nn.dropout import key_samples
 from scaledrill.nn.ghost_bn import set_group_size
 from scaledrill.nn.stock import stock_batchnorm
-from scaledrill.tasks.base import build_task, forward_loss
+from scaledrill.tasks.base import build_task
 
 
 def _rel(layers) -> float:
     return max(x.max_rel for x in layers)
-
-
-def _keyed_loss(task, batch: dict) -> float:
-    key_samples(task.model, batch["index"], 0)  # the same dropout masks for a sample in the whole batch and its part
-    return float(forward_loss(task.model, task.loss, batch))
 
 
 def dropout_modules(model) -> list:
@@ -190,10 +185,13 @@ class Diagnosis:
         b = cfg.layout.micro_batch
         set_group_size(task.model, b)
         batch = global_batches(cfg, task.data, 1, dtype)[0]
-        with torch.no_grad():
-            whole = _keyed_loss(task, batch)
-            parts = [{k: v[i : i + b] for k, v in batch.items()} for i in range(0, batch["input"].shape[0], b)]
-            summed = sum(_keyed_loss(task, p) for p in parts)
+        with torch.no_grad():  # one forward, then the loss of the whole output and of its slices: the loss alone
+            key_samples(task.model, batch["index"], 0)  # is judged, whatever randomness the model's forward holds
+            out = task.model(batch["input"])
+            whole = float(task.loss(out, batch))
+            cuts = range(0, batch["input"].shape[0], b)
+            parts = [{k: v[i : i + b] for k, v in batch.items()} for i in cuts]
+            summed = sum(float(task.loss(out[i : i + b], p)) for i, p in zip(cuts, parts))
             counted = sum(float(task.loss.count(p)) for p in parts), float(task.loss.count(batch))
         if abs(whole - summed) <= 1e-9 * max(abs(whole), 1.0) and counted[0] == counted[1]:
             return

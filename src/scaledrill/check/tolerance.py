@@ -30,10 +30,15 @@ in float32 and the reference in float64, the check also computes the true batch 
 float32 (same code, same samples, no engine) and takes F = 4 times how far that moves
 from float64, per module and per step, as the least tolerance (`floor_from`). F is our
 own margin: a path rounds in another order and may cross other kinks, of the same size.
+Only for a model whose float32 true batch repeats to the bit when the global random
+state moves (`same_trajectory`): unkeyed random draws would pass for rounding, so such a
+model gets no floor and the diagnosis names its draws.
 """
 
 import math
 from dataclasses import dataclass, field, replace
+
+import torch
 
 from scaledrill.layout import Layout
 
@@ -172,3 +177,9 @@ def floor_note(tol: Tolerance, ref) -> str:
     shown = ", ".join(raised[:6]) + (f" and {len(raised) - 6} more" if len(raised) > 6 else "")
     return (f"rounding floor: the true batch computed in float32 moves {shown} further from float64 than the rule allows "
             f"(a kink such as ReLU meets rounding); there the tolerance is {FLOOR:g}x that distance")
+
+
+def same_trajectory(a, b) -> bool:
+    """Whether two trajectories hold the very same gradients and parameters."""
+    return all(torch.equal(x, y) for x, y in zip(a.grads, b.grads)) and all(
+        torch.equal(x, y) for p, q in zip(a.params, b.params) for x, y in zip(p, q))

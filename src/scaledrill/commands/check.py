@@ -24,7 +24,7 @@ from scaledrill.check import output
 from scaledrill.check.diagnose import diagnose
 from scaledrill.check.runner import Runner
 from scaledrill.check.settings import read_settings
-from scaledrill.check.tolerance import UNIT_ROUNDOFF, Tolerance, compare, floor_from, floor_note
+from scaledrill.check.tolerance import UNIT_ROUNDOFF, Tolerance, compare, floor_from, floor_note, same_trajectory
 from scaledrill.config.validate import validate_run
 
 
@@ -60,12 +60,15 @@ def check_verb(cfg, run_dir: Path) -> CheckResult:
     coarser = runner.rounds_coarser()
     with Progress(TextColumn("[bold]check[/] {task.description}"), BarColumn(), MofNCompleteColumn(),
                   TimeElapsedColumn(), console=Console(stderr=True), transient=True) as bar:
-        work = bar.add_task("reference", total=1 + coarser + len(plan))
+        work = bar.add_task("reference", total=1 + coarser + len(plan))  # the floor: two float32 runs, one tick
         ref = runner.reference()  # 2.
         bar.advance(work)
         if coarser:  # the model's own float32 rounding sets the least tolerance (tolerance.py)
             bar.update(work, description="reference in float32 (rounding floor)")
-            tol = floor_from(tol, runner.reference(dtype=torch.float32), ref)
+            low = runner.reference(dtype=torch.float32)
+            moved = runner.reference(dtype=torch.float32, model_hook=lambda model: torch.rand(7))  # only the random state moves
+            if same_trajectory(low, moved):  # else unkeyed random draws, not rounding: no floor (the diagnosis names them)
+                tol = floor_from(tol, low, ref)
             bar.advance(work)
         runs = {}
         for name in plan:  # 3.
