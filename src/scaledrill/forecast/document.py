@@ -76,7 +76,7 @@ def _si(value: float, unit: str) -> str:
 
 
 COLUMNS = (
-    "batch (samples)", "devices", "steps", "compute/step (fwd+bwd)", "all-reduce/step (exposed)",
+    "batch (samples)", "devices", "steps", "compute per step (fwd+bwd)", "all-reduce per step (exposed)",
     "step time", "time to target", "device-h", "cost (price units)", "speed-up vs base", "cost vs base", "",
 )  # fmt: skip
 
