@@ -6,7 +6,6 @@ The outside reference is torch's own nn.BatchNorm2d in train mode (Ioffe & Szege
 
 import copy
 import os
-import socket
 
 import pytest
 import torch
@@ -15,6 +14,7 @@ import torch.multiprocessing as mp
 from conftest import make_config
 from scaledrill.config.validate import validate_run
 from scaledrill.dist import LocalCollective
+from scaledrill.dist.launch import free_port
 from scaledrill.errors import ConfigError
 from scaledrill.nn import GhostBatchNorm
 from scaledrill.nn.ghost_bn import set_global_statistics
@@ -99,17 +99,12 @@ def _rank(rank, port, container, out_dir):
         collective.close()
 
 
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
-
 
 def test_two_gloo_processes_equal_one_process_with_global_statistics(tmp_path):
     from omegaconf import OmegaConf
 
     two_procs = make_config(*RECIPE, "train.batchnorm=global", "layout.backend=gloo", "layout.procs=2")
-    mp.spawn(_rank, args=(_free_port(), OmegaConf.to_container(two_procs, resolve=True), str(tmp_path)), nprocs=2)
+    mp.spawn(_rank, args=(free_port(), OmegaConf.to_container(two_procs, resolve=True), str(tmp_path)), nprocs=2)
     ranks = [torch.load(tmp_path / f"rank{r}.pt") for r in range(2)]
     one = _train(make_config(*RECIPE, "train.batchnorm=global"), LocalCollective())
     per_worker = _train(make_config(*RECIPE, "train.batchnorm=worker"), LocalCollective())

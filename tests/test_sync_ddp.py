@@ -6,7 +6,6 @@ average is not trivial. W = P = 2, one worker per process, as DDP has.
 
 import copy
 import os
-import socket
 from datetime import timedelta
 
 import pytest
@@ -17,17 +16,13 @@ from torch.distributed.algorithms.ddp_comm_hooks.default_hooks import bf16_compr
 from torch.distributed.algorithms.ddp_comm_hooks.powerSGD_hook import PowerSGDState, powerSGD_hook
 from torch.nn.parallel import DistributedDataParallel as DDP
 
+from scaledrill.dist.launch import free_port
 from scaledrill.dist.gloo import GlooCollective
 from scaledrill.layout import Layout
 from scaledrill.sync import build_sync
 
 STEPS = 25  # PowerSGD steps; the power iteration converges by (σ2/σ1)² = 1/4 per step
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def mlp() -> torch.nn.Module:

@@ -8,7 +8,6 @@ from one config in the same two processes and takes the overlap away from one.
 """
 
 import os
-import socket
 from datetime import timedelta
 
 import pytest
@@ -17,6 +16,7 @@ import torch.distributed as dist
 import torch.multiprocessing as mp
 
 from conftest import make_config
+from scaledrill.dist.launch import free_port
 
 STEPS = 4
 BASE = ("layout.workers=4", "layout.procs=2", "layout.backend=gloo", "train.grads=fused", "train.progress=false")
@@ -32,11 +32,6 @@ CASES = {
                     "train.scaler.shrink=0.0009765625", "telemetry.noise_every=0"),
 }
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def _run(rank, port, out_dir):

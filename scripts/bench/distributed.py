@@ -10,7 +10,6 @@ finish together).
 import copy
 import json
 import os
-import socket
 import tempfile
 import time
 from pathlib import Path
@@ -19,6 +18,7 @@ import torch
 import torch.distributed as dist
 import torch.multiprocessing as mp
 
+from scaledrill.dist.launch import free_port
 from scaledrill.sync.settings import SyncConfig
 
 from .common import MICRO, WORKERS, pin_threads, step0_fetch, trainer
@@ -27,11 +27,6 @@ from .timing import Row, interleave, ms, ratios
 PROCS = 2
 DEFAULT_KIB = float(SyncConfig.bucket_kib)
 
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def ddp_step(tr):

@@ -52,7 +52,7 @@ class WorkerBlame:
         self.trainer = trainer
         self.step: int | None = None
         self.micro: list[dict] = []
-        self.saved: list[torch.Tensor] = []
+        self.saved: dict[str, torch.Tensor] = {}  # parameters by name, before the step's update
         self.saved_buffers: dict[str, torch.Tensor] = {}
 
     def before(self, step: int, micro: list[dict]) -> None:
@@ -63,15 +63,14 @@ class WorkerBlame:
     def keep_params(self) -> None:
         """Step 1, for the parameters: any time before the optimizer moves them. The engine
         calls it while the gradient's all-reduce is in flight, where a process waits anyway."""
-        self.saved = list(_copy_into(dict(enumerate(self.saved)), dict(enumerate(self.trainer.params))).values())
+        self.saved = _copy_into(self.saved, dict(self.trainer.model.named_parameters()))
 
-    def _swap(self, params: list[torch.Tensor], buffers: dict[str, torch.Tensor]) -> None:
-        named = dict(self.trainer.model.named_buffers())
+    def _swap(self, params: dict[str, torch.Tensor], buffers: dict[str, torch.Tensor]) -> None:
+        model = self.trainer.model
         with torch.no_grad():
-            for p, value in zip(self.trainer.params, params):
-                p.copy_(value)
-            for n, value in buffers.items():
-                named[n].copy_(value)
+            for live, values in ((dict(model.named_parameters()), params), (dict(model.named_buffers()), buffers)):
+                for n, value in values.items():
+                    live[n].copy_(value)
 
     def _worker_rows(self) -> tuple[torch.Tensor, torch.Tensor]:
         """Step 2: [V, 2] (mean loss, gradient norm) and [V, k·b] per-sample losses of this process's workers."""
@@ -104,7 +103,7 @@ class WorkerBlame:
         t = self.trainer
         if self.step is None or not self.saved:
             return None
-        live = [p.detach().clone() for p in t.params]
+        live = {n: p.detach().clone() for n, p in t.model.named_parameters()}
         live_buffers = {n: b.detach().clone() for n, b in t.model.named_buffers()}
         try:
             with torch.enable_grad():
