@@ -43,3 +43,29 @@ def test_the_incident_names_the_worker_and_the_sample(tmp_path, procs, backend, 
     # (with stock dropout too: each sample gets the mask it had in the step).
     logged = read_scalars(tmp_path / "run.sqlite")["loss"][1][STEP]
     assert sum(workers["loss"]) / W == pytest.approx(float(logged), rel=1e-5)
+
+
+def test_the_weights_are_kept_only_on_the_steps_a_detector_fires(tmp_path, monkeypatch):
+    """The engine asks the monitor before each update: the per-worker rerun's copy of the model is
+    taken on the firing steps alone, and the incident still holds the rows of the firing step."""
+    from conftest import make_config
+    from scaledrill.dist import LocalCollective
+    from scaledrill.telemetry.store import read_events
+    from scaledrill.train.blame import WorkerBlame
+    from scaledrill.train.engine import run_training
+
+    kept = []
+    keep = WorkerBlame.keep_params
+    monkeypatch.setattr(WorkerBlame, "keep_params", lambda self: (kept.append(self.step), keep(self))[1])
+    sampler = Sampler(SIZE, Layout(W, 1, B_MICRO, 1, "local"), SEED, "drop")
+    bad = int(sampler.worker_batches(STEP, range(W))[0, WORKER, POSITION])
+    cfg = make_config("~task.model", "+task.model._target_=tests.fixtures_user.TinyNet", "+task.model.activation=relu", "~task.data",
+                      "+task.data._target_=tests.fixtures_user.CorruptedBlobData", f"+task.data.bad={bad}", f"layout.workers={W}",
+                      f"layout.micro_batch={B_MICRO}", "optim.lr=0.05", "train.steps=10", "train.eval_every=0", "train.progress=false",
+                      "telemetry.on_trigger=continue")
+    run_training(cfg, LocalCollective(), run_dir=tmp_path)
+    fired = sorted({e["step"] for e in read_events(tmp_path / "run.sqlite") if e["kind"] == "detector"})
+    assert fired and fired[0] == STEP
+    assert kept == fired
+    record = json.loads((tmp_path / f"incident-{STEP}.json").read_text())
+    assert [o["worker"] for o in record["workers"]["outliers"]] == [WORKER]

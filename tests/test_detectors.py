@@ -190,3 +190,34 @@ def test_initial_rise_fires_before_any_window_is_ready():
     again = InitialRise(factor=3.0)
     again.load_state_dict(adopted.state_dict())
     assert again.off and again.observe(20, {"loss": 0.5}) is None
+
+
+def test_check_before_observe_gives_observes_verdict_and_changes_nothing():
+    """The engine asks `check` before the update (to keep the weights the per-worker rerun needs)
+    and the monitor then calls `observe`: on a run with spikes, explosions, NaNs, skipped steps
+    and a collapsing loss scale, both say the same on every step, and `check` leaves the state."""
+    rng = np.random.default_rng(3)
+    series = healthy(400, seed=1)
+    for step in (60, 61, 150, 250):
+        series[step] = dict(series[step], loss=series[step]["loss"] * 9)
+    for step in (90, 200):
+        series[step] = dict(series[step], grad_norm=40.0)
+    series[300] = dict(series[300], loss=float("nan"))
+    for step, s in enumerate(series):
+        s["loss_scale"] = 2.0 ** (8 - step // 40)  # falls below 1 at step 360
+        if rng.random() < 0.3 or 340 <= step < 352:
+            s["skipped"] = 1.0
+    early = [{"loss": v} for v in (2.0, 2.1, 1.9, 7.0)] + series  # the initial rise fires at step 3
+    detectors = [NonFinite(), LossSpike(), GradExplosion(), InitialRise(), OverflowStorm(), ScaleCollapse()]
+    fired = {type(d).__name__: [] for d in detectors}
+    for step, s in enumerate(early):
+        for d in detectors:
+            before = repr(d.state_dict())
+            said = d.check(step, s)
+            assert repr(d.state_dict()) == before
+            assert said == d.observe(step, s), (type(d).__name__, step)
+            if said:
+                fired[type(d).__name__].append(step)
+    assert fired["NonFinite"] == [304] and fired["InitialRise"][0] == 3
+    assert 64 in fired["LossSpike"] and 94 in fired["GradExplosion"] and fired["ScaleCollapse"] == [364]
+    assert fired["OverflowStorm"]  # ten skips within 50 steps

@@ -80,7 +80,10 @@ def compressors(rounds: int, workers: int = WORKERS) -> list[Row]:
 
 
 def observed(tr, monitor):
-    """A step whose record goes through the telemetry monitor and its run store, as in a run."""
+    """A step whose record goes through the telemetry monitor and its run store, as in a run
+    (which also lets the trainer ask the monitor whether a detector will fire)."""
+    tr.alarm = monitor.would_fire
+
     def step():
         monitor.observe(tr.step())
     return step

@@ -78,8 +78,14 @@ class SampleDropout(nn.Module):
         return x * keep.to(x.dtype) / (1 - self.p)
 
 
-def key_samples(module: nn.Module, keys: torch.Tensor | None, step: int = 0) -> None:
-    """Tell every SampleDropout of `module` the global sample indices of the next forward and the step."""
-    for m in module.modules():
-        if isinstance(m, SampleDropout):
-            m.keys, m.step = keys, step
+def sample_dropouts(module: nn.Module) -> list[SampleDropout]:
+    """Every SampleDropout of `module`: found once, since a walk over the modules before
+    every forward costs microseconds a small model's step notices."""
+    return [m for m in module.modules() if isinstance(m, SampleDropout)]
+
+
+def key_samples(module: nn.Module | list[SampleDropout], keys: torch.Tensor | None, step: int = 0) -> None:
+    """Tell every SampleDropout of `module` (or the list `sample_dropouts` found in it) the
+    global sample indices of the next forward and the step."""
+    for m in sample_dropouts(module) if isinstance(module, nn.Module) else module:
+        m.keys, m.step = keys, step

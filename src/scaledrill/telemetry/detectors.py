@@ -1,7 +1,11 @@
 """Divergence detectors: small watchers that say why a run has gone wrong.
 
-Protocol: `observe(step, scalars) -> reason | None`, plus `state_dict` /
-`load_state_dict` so a resumed run keeps its trailing windows. A detector holds
+Protocol: `check(step, scalars) -> reason | None` says whether the step would fire
+without changing anything (the engine asks it before the optimizer moves the
+weights, so the per-worker rerun gets the weights of a firing step only);
+`observe(step, scalars)` is the same verdict that then takes the step into the
+detector's history; `state_dict` / `load_state_dict` so a resumed run keeps its
+trailing windows. A detector holds
 its own counter of firings and never prints; the engine decides what to do
 (`telemetry.on_trigger`: stop, or continue after writing an incident record).
 
@@ -57,6 +61,8 @@ MAD_TO_SIGMA = 1.4826  # 1 / Φ⁻¹(3/4): MAD of a Gaussian times this is its �
 class Detector(Protocol):
     fired: int
 
+    def check(self, step: int, scalars: dict[str, float]) -> str | None: ...
+
     def observe(self, step: int, scalars: dict[str, float]) -> str | None: ...
 
     def state_dict(self) -> dict: ...
@@ -69,13 +75,17 @@ class NonFinite:
     keys: tuple[str, ...] = ("loss", "grad_norm")
     fired: int = 0
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         for key in self.keys:
             value = scalars.get(key)
             if value is not None and not math.isfinite(value):
-                self.fired += 1
                 return f"{key} is {value} at step {step}"
         return None
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        reason = self.check(step, scalars)
+        self.fired += reason is not None
+        return reason
 
     def state_dict(self) -> dict:
         return {"fired": self.fired}
@@ -93,6 +103,7 @@ class _Trailing:
     min_history: int = 20
     history: list[float] = field(default_factory=list)
     fired: int = 0
+    first: float | None = None  # the first finite value seen
 
     def _push(self, value: float) -> None:
         self.history.append(value)
@@ -101,11 +112,20 @@ class _Trailing:
     def _ready(self, value) -> bool:
         return value is not None and math.isfinite(value) and len(self.history) >= self.min_history
 
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        reason = self.check(step, scalars)
+        self.fired += reason is not None
+        value = scalars.get(self.key)
+        if value is not None and math.isfinite(value):
+            self.first = value if self.first is None else self.first
+            self._push(value)
+        return reason
+
     def state_dict(self) -> dict:
-        return {"history": list(self.history), "fired": self.fired}
+        return {"history": list(self.history), "fired": self.fired, "first": self.first}
 
     def load_state_dict(self, state: dict) -> None:
-        self.history, self.fired = list(state["history"]), state["fired"]
+        self.history, self.fired, self.first = list(state["history"]), state["fired"], state.get("first")
 
 
 @dataclass
@@ -113,66 +133,45 @@ class LossSpike(_Trailing):
     threshold: float = 6.0
     ratio: float = 2.0  # the loss must also exceed ratio × the trailing median (1 = no relative floor)
     share: float = 0.2  # ...and rise above it by share × (first loss - median) (0 = no such floor)
-    first: float | None = None  # the first finite value seen
     rel_floor: float = 1e-3  # spread floor, × |median|: a flat loss must not turn rounding into a spike
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
-        reason = None
-        if self._ready(value):
-            med = statistics.median(self.history)
-            mad = statistics.median(abs(h - med) for h in self.history)
-            spread = max(MAD_TO_SIGMA * mad, self.rel_floor * abs(med), 1e-12)
-            z = (value - med) / spread
-            fall = (self.first - med) if self.first is not None else 0.0
-            if z > self.threshold and value > self.ratio * med and value - med >= self.share * max(fall, 0.0):
-                self.fired += 1
-                reason = (
-                    f"{self.key} spike at step {step}: {value:.6g} is {z:.1f} robust sigma and "
-                    f"{value / med:.2f}x above the trailing median {med:.6g} "
-                    f"(thresholds {self.threshold:g} sigma and {self.ratio:g}x)"
-                )
-        if value is not None and math.isfinite(value):
-            self.first = value if self.first is None else self.first
-            self._push(value)
-        return reason
-
-    def state_dict(self) -> dict:
-        return {**super().state_dict(), "first": self.first}
-
-    def load_state_dict(self, state: dict) -> None:
-        super().load_state_dict(state)
-        self.first = state.get("first")
+        if not self._ready(value):
+            return None
+        med = statistics.median(self.history)
+        # The cheap floors first: most steps fail them, and the MAD is a second median.
+        fall = (self.first - med) if self.first is not None else 0.0
+        if not (value > self.ratio * med and value - med >= self.share * max(fall, 0.0)):
+            return None
+        mad = statistics.median(abs(h - med) for h in self.history)
+        spread = max(MAD_TO_SIGMA * mad, self.rel_floor * abs(med), 1e-12)
+        z = (value - med) / spread
+        if z <= self.threshold:
+            return None
+        return (
+            f"{self.key} spike at step {step}: {value:.6g} is {z:.1f} robust sigma and "
+            f"{value / med:.2f}x above the trailing median {med:.6g} "
+            f"(thresholds {self.threshold:g} sigma and {self.ratio:g}x)"
+        )
 
 
 @dataclass
 class GradExplosion(_Trailing):
     key: str = "grad_norm"
     factor: float = 10.0
-    first: float | None = None  # the first finite value seen
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
-        reason = None
-        if self._ready(value):
-            med = statistics.median(self.history)
-            if med > 0 and value > self.factor * med and value > (self.first or 0.0):  # a zero median (gradients flushed to zero) has no scale
-                self.fired += 1
-                reason = (
-                    f"{self.key} explosion at step {step}: {value:.6g} is {value / med:.1f}x "
-                    f"the trailing median {med:.6g} (limit {self.factor:g}x) and above the first norm {self.first:.6g}"
-                )
-        if value is not None and math.isfinite(value):
-            self.first = value if self.first is None else self.first
-            self._push(value)
-        return reason
-
-    def state_dict(self) -> dict:
-        return {**super().state_dict(), "first": self.first}
-
-    def load_state_dict(self, state: dict) -> None:
-        super().load_state_dict(state)
-        self.first = state.get("first")
+        if not self._ready(value):
+            return None
+        med = statistics.median(self.history)
+        if med > 0 and value > self.factor * med and value > (self.first or 0.0):  # a zero median (gradients flushed to zero) has no scale
+            return (
+                f"{self.key} explosion at step {step}: {value:.6g} is {value / med:.1f}x "
+                f"the trailing median {med:.6g} (limit {self.factor:g}x) and above the first norm {self.first:.6g}"
+            )
+        return None
 
 
 @dataclass
@@ -184,26 +183,32 @@ class InitialRise:
     fired: int = 0
     off: bool = False  # first seen after step 0 (an adopted checkpoint): its losses are not the start of training
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def _watching(self, step: int, value) -> bool:
+        # Not a run that started here: a run taken over mid-training (adopt) starts near its converged
+        # loss, where noise alone moves a small loss by several times; the windowed detectors watch it.
+        return value is not None and math.isfinite(value) and not self.off and not (not self.initial and step > 0)
+
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
-        if value is None or not math.isfinite(value) or self.off:
-            return None  # NonFinite's business, or a run that did not start here
-        if not self.initial and step > 0:
-            # A run taken over mid-training (adopt) starts near its converged loss, where noise alone
-            # moves a small loss by several times; the windowed detectors watch it once they fill.
-            self.off = True
-            return None
-        if len(self.initial) < self.arm:
-            self.initial.append(value)
-            return None
+        if not self._watching(step, value) or len(self.initial) < self.arm:
+            return None  # NonFinite's business, another run's start, or still arming
         start = statistics.median(self.initial)
         if start > 0 and value > self.factor * start:
-            self.fired += 1
             return (
                 f"{self.key} rise at step {step}: {value:.6g} is {value / start:.2f}x "
                 f"the first losses' median {start:.6g} (limit {self.factor:g}x)"
             )
         return None
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        value = scalars.get(self.key)
+        reason = self.check(step, scalars)
+        self.fired += reason is not None
+        if value is not None and math.isfinite(value) and not self.initial and step > 0:
+            self.off = True
+        elif self._watching(step, value) and len(self.initial) < self.arm:
+            self.initial.append(value)
+        return reason
 
     def state_dict(self) -> dict:
         return {"initial": list(self.initial), "fired": self.fired, "off": self.off}
@@ -219,18 +224,26 @@ class OverflowStorm:
     recent: list[int] = field(default_factory=list)  # steps skipped within the window
     fired: int = 0
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def _recent(self, step: int) -> list[int]:
+        return [s for s in self.recent if s > step - self.window] + [step]
+
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         if not scalars.get("skipped"):
             return None
-        self.recent = [s for s in self.recent if s > step - self.window] + [step]
-        if len(self.recent) < self.count:
+        recent = self._recent(step)
+        if len(recent) < self.count:
             return None
-        self.fired += 1
-        first, self.recent = self.recent[0], []  # one firing per storm
         return (
-            f"overflow storm at step {step}: {self.count} steps skipped for an inf/NaN gradient since step {first} "
+            f"overflow storm at step {step}: {self.count} steps skipped for an inf/NaN gradient since step {recent[0]} "
             f"(limit {self.count} in {self.window} steps); the loss scale is {scalars.get('loss_scale', float('nan')):g}"
         )
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        reason = self.check(step, scalars)
+        if scalars.get("skipped"):
+            self.recent = [] if reason else self._recent(step)  # one firing per storm
+        self.fired += reason is not None
+        return reason
 
     def state_dict(self) -> dict:
         return {"recent": list(self.recent), "fired": self.fired}
@@ -245,15 +258,19 @@ class ScaleCollapse:
     below: bool = False  # fire when the scale crosses the floor, not on every step below it
     fired: int = 0
 
-    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+    def check(self, step: int, scalars: dict[str, float]) -> str | None:
         scale = scalars.get("loss_scale")
-        if scale is None:
+        if scale is None or not scale < self.floor or self.below:
             return None
-        was, self.below = self.below, scale < self.floor
-        if not self.below or was:
-            return None
-        self.fired += 1
         return f"loss scale collapsed at step {step}: {scale:g} is below the floor {self.floor:g}"
+
+    def observe(self, step: int, scalars: dict[str, float]) -> str | None:
+        reason = self.check(step, scalars)
+        scale = scalars.get("loss_scale")
+        if scale is not None:
+            self.below = scale < self.floor
+        self.fired += reason is not None
+        return reason
 
     def state_dict(self) -> dict:
         return {"below": self.below, "fired": self.fired}

@@ -83,6 +83,12 @@ class Monitor:
             if tel.tensorboard:
                 self.events = open_event_writer(run_dir / "tensorboard")
 
+    def would_fire(self, record: StepRecord) -> bool:
+        """Whether `observe(record)` will find a detector firing, asked before the step's update
+        (the engine then keeps the weights the per-worker rerun needs); changes nothing."""
+        scalars = record.scalars()
+        return any(d.check(record.step, scalars) for d in self.detectors)
+
     def observe(self, record: StepRecord) -> str | None:
         """Log the step; return a detector's reason when one fires and the run should stop."""
         scalars = record.scalars()

@@ -52,23 +52,28 @@ class WorkerBlame:
         self.trainer = trainer
         self.step: int | None = None
         self.micro: list[dict] = []
-        self.saved: dict[str, torch.Tensor] = {}  # parameters by name, before the step's update
+        # The engine's tensors stay in place for the run (restores and the per-worker paths copy into
+        # them), so they are listed once: a walk over the modules every step costs a small model's step.
+        self.params = dict(trainer.model.named_parameters())
+        self.buffers = dict(trainer.model.named_buffers())
+        self.saved: dict[str, torch.Tensor] = {}  # parameters by name, before the update of step `saved_step`
+        self.saved_step: int | None = None
         self.saved_buffers: dict[str, torch.Tensor] = {}
 
     def before(self, step: int, micro: list[dict]) -> None:
         """Step 1, before the forward passes (they move the running statistics)."""
         self.step, self.micro = step, micro
-        self.saved_buffers = _copy_into(self.saved_buffers, dict(self.trainer.model.named_buffers()))
+        self.saved_buffers = _copy_into(self.saved_buffers, self.buffers)
 
     def keep_params(self) -> None:
-        """Step 1, for the parameters: any time before the optimizer moves them. The engine
-        calls it while the gradient's all-reduce is in flight, where a process waits anyway."""
-        self.saved = _copy_into(self.saved, dict(self.trainer.model.named_parameters()))
+        """Step 1, for the parameters: any time before the optimizer moves them. The engine calls it
+        on the steps its monitor will find a detector firing on (every step without a monitor)."""
+        self.saved = _copy_into(self.saved, self.params)
+        self.saved_step = self.step
 
     def _swap(self, params: dict[str, torch.Tensor], buffers: dict[str, torch.Tensor]) -> None:
-        model = self.trainer.model
         with torch.no_grad():
-            for live, values in ((dict(model.named_parameters()), params), (dict(model.named_buffers()), buffers)):
+            for live, values in ((self.params, params), (self.buffers, buffers)):
                 for n, value in values.items():
                     live[n].copy_(value)
 
@@ -101,8 +106,8 @@ class WorkerBlame:
     def report(self) -> dict | None:
         """Steps 2-5; every process must call it (it gathers), rank 0 gets the record."""
         t = self.trainer
-        if self.step is None or not self.saved:
-            return None
+        if self.step is None or self.saved_step != self.step:
+            return None  # no weights of this step were kept
         live = {n: p.detach().clone() for n, p in t.model.named_parameters()}
         live_buffers = {n: b.detach().clone() for n, b in t.model.named_buffers()}
         try:

@@ -75,6 +75,8 @@ class Trainer:
         self.grads.accum_dtype = self.precision.accum_dtype
         self.path = self._choose_path(cfg.train.grads)
         self.overlap = self._overlap()
+        # The fused path's gradient buffer, kept for the run where no overlap keeps its own.
+        self.kept = self.grads.kept_buffer() if self.path == "fused" and self.overlap is None else None
         check_fits(self)  # before the first step allocates
         self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
@@ -88,6 +90,9 @@ class Trainer:
         self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
         self.clip_norm = cfg.optim.clip_norm
         self.blame = WorkerBlame(self) if tel.get("blame", True) else None  # whose batch, when a detector fires
+        # Set by the run to its monitor's `would_fire`: the blame then copies the weights only on a
+        # step a detector will fire on (a copy of the model every step is a tenth of a large model's step).
+        self.alarm = None
 
 
     def _say(self, line: str) -> None:
@@ -124,9 +129,10 @@ class Trainer:
         index = self.sampler.worker_batches(step, self.workers)  # [k, V, b]
         micro = []
         for m in range(self.layout.accum):
-            batch = self.task.data.train.take(index[m].reshape(-1))
-            check_finite(batch, index[m])
-            micro.append(dict(cast_batch(batch, self.dtype), index=index[m].reshape(-1)))
+            flat = index[m].reshape(-1)
+            batch = self.task.data.train.take(flat)
+            check_finite(batch, flat)
+            micro.append(dict(cast_batch(batch, self.dtype), index=flat))
         return micro
 
     def _global_count(self, micro: list[dict]) -> float:
@@ -184,14 +190,17 @@ class Trainer:
         S = self.precision.loss_scale  # 1 unless the loss is scaled
         overlapped = self.overlap is not None and path == "fused"
         with self.precision.autocast():
-            result = self.overlap.compute(micro, scale * S) if overlapped else self.grads.compute(micro, scale * S, path)
+            if overlapped:
+                result = self.overlap.compute(micro, scale * S)
+            elif path == "fused" and self.kept is not None:
+                result = self.grads.fused(micro, scale * S, into=self.kept)
+            else:
+                result = self.grads.compute(micro, scale * S, path)
         result.local = self.precision.widen(result.local, self.dtype)
         flag = getattr(self, "stop_flag", None)
-        local_sq = float(result.local.double().square().sum()) if noise else 0.0  # before the sync may reuse `local`
+        local_sq = _square_norm(result.local) if noise else 0.0  # before the sync may reuse `local`
         shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and self.cfg.sync.name != "exact" else None
-        if self.blame is not None:
-            self.blame.keep_params()  # while the all-reduce is in flight
         if overlapped:
             self.overlap.wait()  # the buckets' all-reduces, started during backward
         average = self.sync.reduce(result.local, self.workers, step, donate=True, summed=overlapped)
@@ -200,45 +209,46 @@ class Trainer:
         small_sq = big_sq = None
         if noise:
             small_sq = float(scalars[1]) / W / S**2
-            big_sq = float((average if exact is None else exact / self.layout.workers).double().square().sum()) / S**2
+            big_sq = _square_norm(average if exact is None else exact / self.layout.workers) / S**2
 
         self.grads.write_grads(average)  # every .grad is a view of `average`
         layers_due = self._layers_due(step)
         verdict = self.precision.after_reduce(average, [p.grad for p in self.params] if layers_due else None, self.grads.names)
         clip = self.clip_norm
-        lr = self.recipe.lr_at(step)
-        layers, grad_norm = None, float("nan")
-        if verdict.apply:  # else an inf/NaN in the scaled gradient: skip the step (train/precision.py)
-            grad_norm = clip_flat(average, clip)  # the .grads are views of `average`: one norm, one scale
-            set_lr(self.optimizer, lr)
-            before = [p.detach().clone() for p in self.params] if layers_due else None
-            self.optimizer.step()
-            if layers_due:
-                updates = [p.detach() - b for p, b in zip(self.params, before)]
-                layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
-        else:
+        grad_norm = clip_flat(average, clip) if verdict.apply else float("nan")  # the .grads are views of `average`: one norm, one scale
+        if not verdict.apply:  # an inf/NaN in the scaled gradient: the step is skipped (train/precision.py)
             small_sq = big_sq = None
-        for name, shares in (verdict.layers or {}).items():
-            layers = layers or {}
-            layers.setdefault(name, {}).update(shares)
-        trust = getattr(self.optimizer, "trust_ratios", None)
-        self.step_index += 1
-        return StepRecord(
+        record = StepRecord(
             step=step,
             loss=float(scalars[0]) / W / S,
-            lr=lr,
+            lr=self.recipe.lr_at(step),
             grad_norm=float(grad_norm),
             clipped_norm=min(float(grad_norm), clip) if clip else float(grad_norm),
             small_sq=small_sq,
             big_sq=big_sq,
-            layers=layers,
-            trust=dict(trust) if trust and layers_due else None,
             sync=dict(self.sync.stats),
             interrupt=bool(scalars[2] > 0),
             signum=(flag.signum if flag else 0) or _one_signal(float(scalars[2]), self.comm.size),
             precision=verdict.scalars,
             skipped=not verdict.apply,
         )
+        if self.blame is not None and (self.alarm is None or self.alarm(record)):
+            self.blame.keep_params()  # the weights before the update, for the per-worker rerun of a firing step
+        layers = None
+        if verdict.apply:
+            set_lr(self.optimizer, record.lr)
+            before = [p.detach().clone() for p in self.params] if layers_due else None
+            self.optimizer.step()
+            if layers_due:
+                updates = [p.detach() - b for p, b in zip(self.params, before)]
+                layers = layer_stats(self.grads.names, self.params, [p.grad for p in self.params], updates)
+        for name, shares in (verdict.layers or {}).items():
+            layers = layers or {}
+            layers.setdefault(name, {}).update(shares)
+        trust = getattr(self.optimizer, "trust_ratios", None)
+        record.layers, record.trust = layers, dict(trust) if trust and layers_due else None
+        self.step_index += 1
+        return record
 
     def _exact_sum(self, local: torch.Tensor) -> torch.Tensor:
         """Σ over all workers of the uncompressed gradients: the noise scale's big batch."""
@@ -288,6 +298,7 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     layout = trainer.layout
     monitor = Monitor(cfg, run_dir, collective.rank, layout.micro_batch * layout.accum, layout.global_batch, config_yaml(cfg))
     monitor.blame = trainer.blame.report if trainer.blame is not None else None
+    trainer.alarm = monitor.would_fire
     if cfg.get("resume"):
         state = checkpoint.load(cfg.resume)
         checkpoint.restore(trainer, monitor, state)
@@ -361,6 +372,11 @@ def run_training(cfg, collective: Collective, run_dir=None, on_step=None) -> dic
     summary.update(trainer.precision.summary())
     summary.update(sync_summary(cfg.sync.name, [r.sync for r in records]))
     return summary
+
+
+def _square_norm(x: torch.Tensor) -> float:
+    """Σx² summed in float64, without a float64 copy of x ([V, n] on a noise-scale step)."""
+    return float(torch.linalg.vector_norm(x, dtype=torch.float64)) ** 2
 
 
 def _one_signal(total: float, procs: int) -> int:

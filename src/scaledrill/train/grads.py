@@ -35,7 +35,7 @@ import torch
 from torch.func import functional_call, grad, vmap
 
 from scaledrill.errors import ScaledrillError
-from scaledrill.nn.dropout import key_samples
+from scaledrill.nn.dropout import key_samples, sample_dropouts
 from scaledrill.tasks.base import forward_loss
 from scaledrill.train.rows import RuleRows, agree, rule_cause
 
@@ -49,8 +49,8 @@ class StepGrads:
     loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
 
 
-def _sum_loss(loss, model, batch, scale, step=0):
-    key_samples(model, batch.get("index"), step)
+def _sum_loss(loss, model, batch, scale, step=0, dropouts=None):
+    key_samples(model if dropouts is None else dropouts, batch.get("index"), step)
     return forward_loss(model, loss, batch) * scale
 
 
@@ -67,6 +67,8 @@ class GradComputer:
         self.running_stats = [name for name, b in model.named_buffers() if b.is_floating_point() and "running_" in name.rsplit(".", 1)[-1]]
         self.numel = sum(p.numel() for p in self.params)
         self.flat = FlatLayout(self.params)
+        self.dropouts = sample_dropouts(model)
+        self._written: tuple = (None, [])  # where the .grad views of the last `write_grads` point, and they
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
@@ -82,21 +84,31 @@ class GradComputer:
         return torch.zeros(rows, self.numel, dtype=self.accum_dtype or self.params[0].dtype)
 
     # -- fused ---------------------------------------------------------------
-    def fused(self, micro: list[dict], scale: float) -> StepGrads:
+    def fused(self, micro: list[dict], scale: float, into: "KeptBuffer | None" = None) -> StepGrads:
+        """`into`: a buffer the caller keeps across steps (the result is then its tensor, overwritten
+        by the next call); else a fresh one."""
         out, views = None, None
         total = 0.0
         for batch in micro:
-            value = _sum_loss(self.loss, self.model, batch, scale, self.step)
+            value = _sum_loss(self.loss, self.model, batch, scale, self.step, self.dropouts)
             grads = torch.autograd.grad(value, self.params)
             if out is None:  # the first micro-step's gradients are the buffer: one copy, no zero fill
-                out = torch.cat([g.reshape(-1) for g in grads]).unsqueeze(0)
-                if self.accum_dtype is not None and out.dtype != self.accum_dtype:
-                    out = out.to(self.accum_dtype)  # train.accum_dtype: the sum of the micro-steps in 16 bits
-                views = self.flat.views(out[0])
+                if into is not None:
+                    out, views = into.flat, into.views
+                    torch._foreach_copy_(views, grads)  # casts to train.accum_dtype, as .to() below rounds
+                else:
+                    out = torch.cat([g.reshape(-1) for g in grads]).unsqueeze(0)
+                    if self.accum_dtype is not None and out.dtype != self.accum_dtype:
+                        out = out.to(self.accum_dtype)  # train.accum_dtype: the sum of the micro-steps in 16 bits
+                    views = self.flat.views(out[0])
             else:
                 torch._foreach_add_(views, grads)
             total += float(value.detach())
         return StepGrads(out, total)
+
+    def kept_buffer(self) -> "KeptBuffer":
+        """A [1, n] gradient buffer for `fused(into=...)`, in the dtype the micro-steps are summed in."""
+        return KeptBuffer(torch.zeros(1, self.numel, dtype=self.accum_dtype or self.params[0].dtype), self.flat)
 
     # -- per worker ----------------------------------------------------------
     def _split(self, batch: dict) -> dict:
@@ -123,7 +135,7 @@ class GradComputer:
         return self._per_worker(micro, scale)
 
     def _forward_sum(self, scale: float):
-        return lambda batch: _sum_loss(self.loss, self.model, batch, scale, self.step)
+        return lambda batch: _sum_loss(self.loss, self.model, batch, scale, self.step, self.dropouts)
 
     def _check_rules(self, micro: list[dict], scale: float) -> StepGrads:
         """First call: rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
@@ -173,8 +185,10 @@ class GradComputer:
         buffers = self._batched_buffers()
         model, loss, step = self.model, self.loss, self.step
 
+        dropouts = self.dropouts
+
         def worker_loss(p, b, batch):
-            key_samples(model, batch.get("index"), step)
+            key_samples(dropouts, batch.get("index"), step)
             out = functional_call(model, (p, b), (batch["input"],), strict=False)
             value = loss(out, batch).reshape(()) * scale
             return value, value
@@ -186,7 +200,7 @@ class GradComputer:
             grads, values = per_worker(params, buffers, self._split(batch))
             out += torch.cat([grads[n].reshape(self.V, -1) for n in self.names], dim=1)
             total += float(values.sum())
-        key_samples(model, None)  # no batched tensor outlives the transform
+        key_samples(dropouts, None)  # no batched tensor outlives the transform
         self._store_buffer_mean(buffers)
         return StepGrads(out, total)
 
@@ -204,7 +218,7 @@ class GradComputer:
             views = self.flat.views(out[v])
             for batch in split:
                 one = {k: t[v] for k, t in batch.items()}
-                value = _sum_loss(self.loss, self.model, one, scale, self.step)
+                value = _sum_loss(self.loss, self.model, one, scale, self.step, self.dropouts)
                 torch._foreach_add_(views, torch.autograd.grad(value, self.params))
                 total += float(value.detach())
             for n in ends:
@@ -218,9 +232,27 @@ class GradComputer:
         return getattr(self, path)(micro, scale)
 
     def write_grads(self, flat: torch.Tensor) -> None:
-        """Give every parameter its slice of the averaged flat gradient as `.grad`."""
-        for p, view in zip(self.params, self.flat.views(flat)):
+        """Give every parameter its slice of the averaged flat gradient as `.grad`
+        (nothing to do when they already are: a kept buffer, step after step)."""
+        where = (flat.data_ptr(), flat.numel(), flat.dtype)
+        if where == self._written[0] and all(p.grad is g for p, g in zip(self.params, self._written[1])):
+            return
+        views = self.flat.views(flat)
+        for p, view in zip(self.params, views):
             p.grad = view
+        self._written = (where, views)
+
+
+@dataclass
+class KeptBuffer:
+    """A flat gradient buffer kept for a whole run, with its per-parameter views: a fresh vector
+    of a large model is memory the kernel backs page by page on every step."""
+
+    flat: torch.Tensor  # [1, n]
+    layout: "FlatLayout"
+
+    def __post_init__(self):
+        self.views = self.layout.views(self.flat[0])
 
 
 class FlatLayout:
