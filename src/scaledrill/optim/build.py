@@ -36,11 +36,10 @@ def build_optimizer(named_params: list[tuple[str, Parameter]], node) -> torch.op
     groups = param_groups(named_params, float(node.weight_decay), node.exclude)
     lr, name = float(node.lr), node.name
     if name == "sgd":
-        # foreach: one call per group instead of three per parameter, the same bits (CPU runs each kernel in turn)
-        return torch.optim.SGD(groups, lr=lr, momentum=node.momentum, nesterov=bool(node.nesterov), foreach=True)
+        return torch.optim.SGD(groups, lr=lr, momentum=node.momentum, nesterov=bool(node.nesterov))
     if name == "adamw":
         return torch.optim.Adam(groups, lr=lr, betas=tuple(node.betas), eps=node.eps,
-                                decoupled_weight_decay=decay_of(node) == "decoupled", foreach=True)
+                                decoupled_weight_decay=decay_of(node) == "decoupled")
     if name == "lars":
         return LARS(groups, lr=lr, momentum=node.momentum, trust_coefficient=node.trust_coefficient,
                     trust_cap=node.trust_cap, denominator=node.denominator)
