@@ -5,10 +5,11 @@ extreme sample); the question after "when" is "whose batch, which samples". The
 rehearsal knows each worker's sample indices, so it can answer exactly.
 
 How:
-1. Before every step the engine hands over the step's micro-batches; the
-   buffers are copied, and the parameters before the optimizer moves them (one
-   copy of the model, as the layer statistics already take every `layer_every`
-   steps, into the same memory every step).
+1. Before every step the engine hands over the step's micro-batches and the
+   buffers are copied (the forward moves running statistics). The parameters are
+   copied before the optimizer moves them, on the steps the monitor's detectors will
+   fire on (`Monitor.would_fire`, asked once the loss and gradient norm are known):
+   a copy of the model every step is a tenth of a large model's step.
 2. When a detector fires, every process puts the copy back, runs each of its
    workers alone (the per-worker loop path, whatever path the run used: it runs
    any module), reads the worker's mean loss over its k·b samples, the norm of the
