@@ -35,6 +35,18 @@ def composed(group: str, option: str):
     return OmegaConf.create(OmegaConf.to_container(make_config(f"{group}={option}", name=verb)[group]))
 
 
+def spawn_ranks(child, out_dir: Path, nprocs: int = 2) -> list:
+    """Run `child(rank, port, out_dir)` in `nprocs` real processes (torch.multiprocessing) that meet
+    at a free local port; each saves its result to OUT_DIR/rank{r}.pt. Returns them in rank order."""
+    import torch
+    import torch.multiprocessing as mp
+
+    from scaledrill.dist.launch import free_port
+
+    mp.spawn(child, args=(free_port(), str(out_dir)), nprocs=nprocs)
+    return [torch.load(Path(out_dir) / f"rank{r}.pt", weights_only=False) for r in range(nprocs)]
+
+
 def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:
     full_env = dict(os.environ, OMP_NUM_THREADS="1", PYTHONUNBUFFERED="1", **(env or {}))
     done = subprocess.run([*SCALEDRILL, *args], capture_output=True, text=True, timeout=timeout, env=full_env, cwd=ROOT)

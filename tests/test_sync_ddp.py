@@ -11,12 +11,11 @@ from datetime import timedelta
 import pytest
 import torch
 import torch.distributed as dist
-import torch.multiprocessing as mp
 from torch.distributed.algorithms.ddp_comm_hooks.default_hooks import bf16_compress_hook, fp16_compress_hook
 from torch.distributed.algorithms.ddp_comm_hooks.powerSGD_hook import PowerSGDState, powerSGD_hook
 from torch.nn.parallel import DistributedDataParallel as DDP
 
-from scaledrill.dist.launch import free_port
+from conftest import spawn_ranks
 from scaledrill.dist.gloo import GlooCollective
 from scaledrill.layout import Layout
 from scaledrill.sync import build_sync
@@ -105,9 +104,7 @@ def _run(rank, port, out_dir):
 
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
-    out = tmp_path_factory.mktemp("ddp")
-    mp.spawn(_run, args=(free_port(), str(out)), nprocs=2)
-    return [torch.load(out / f"rank{r}.pt") for r in range(2)]
+    return spawn_ranks(_run, tmp_path_factory.mktemp("ddp"))
 
 
 def test_exact_equals_ddp(runs):

@@ -6,14 +6,13 @@ differ between layouts (8 rows at once vs 4 + 4 across processes).
 """
 
 import os
-import socket
 from datetime import timedelta
 
 import pytest
 import torch
 import torch.distributed as dist
-import torch.multiprocessing as mp
 
+from conftest import spawn_ranks
 from scaledrill.dist import LocalCollective
 from scaledrill.dist.gloo import GlooCollective
 from scaledrill.layout import Layout
@@ -63,13 +62,8 @@ def _child(rank, port, out_dir):
 
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
-    out = tmp_path_factory.mktemp("layout")
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        port = s.getsockname()[1]
-    mp.spawn(_child, args=(port, str(out)), nprocs=2)
-    one = run(Layout(W, 1, 1, 1, "local"), LocalCollective(), 0)
-    return one, [torch.load(out / f"rank{r}.pt") for r in range(2)]
+    two = spawn_ranks(_child, tmp_path_factory.mktemp("layout"))
+    return run(Layout(W, 1, 1, 1, "local"), LocalCollective(), 0), two
 
 
 # Tolerance relative to the largest entry. float64: a sum of 8 terms in another order differs

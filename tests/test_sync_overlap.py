@@ -13,10 +13,8 @@ from datetime import timedelta
 import pytest
 import torch
 import torch.distributed as dist
-import torch.multiprocessing as mp
 
-from conftest import make_config
-from scaledrill.dist.launch import free_port
+from conftest import make_config, spawn_ranks
 
 STEPS = 4
 BASE = ("layout.workers=4", "layout.procs=2", "layout.backend=gloo", "train.grads=fused", "train.progress=false")
@@ -67,9 +65,7 @@ def _run(rank, port, out_dir):
 
 @pytest.fixture(scope="module")
 def runs(tmp_path_factory):
-    out = tmp_path_factory.mktemp("overlap")
-    mp.spawn(_run, args=(free_port(), str(out)), nprocs=2)
-    return [torch.load(out / f"rank{r}.pt", weights_only=False) for r in range(2)]
+    return spawn_ranks(_run, tmp_path_factory.mktemp("overlap"))
 
 
 @pytest.mark.parametrize("case", list(CASES))

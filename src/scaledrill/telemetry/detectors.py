@@ -184,9 +184,11 @@ class InitialRise:
     off: bool = False  # first seen after step 0 (an adopted checkpoint): its losses are not the start of training
 
     def _watching(self, step: int, value) -> bool:
-        # Not a run that started here: a run taken over mid-training (adopt) starts near its converged
-        # loss, where noise alone moves a small loss by several times; the windowed detectors watch it.
-        return value is not None and math.isfinite(value) and not self.off and not (not self.initial and step > 0)
+        """A finite loss of a run that started at step 0. A run taken over mid-training (adopt) starts
+        near its converged loss, where noise alone moves a small loss by several times; the windowed
+        detectors watch it."""
+        started_here = bool(self.initial) or step == 0
+        return value is not None and math.isfinite(value) and not self.off and started_here
 
     def check(self, step: int, scalars: dict[str, float]) -> str | None:
         value = scalars.get(self.key)
@@ -204,10 +206,11 @@ class InitialRise:
         value = scalars.get(self.key)
         reason = self.check(step, scalars)
         self.fired += reason is not None
-        if value is not None and math.isfinite(value) and not self.initial and step > 0:
-            self.off = True
-        elif self._watching(step, value) and len(self.initial) < self.arm:
-            self.initial.append(value)
+        if self._watching(step, value):
+            if len(self.initial) < self.arm:
+                self.initial.append(value)
+        elif value is not None and math.isfinite(value):
+            self.off = True  # its first finite loss came after step 0
         return reason
 
     def state_dict(self) -> dict:

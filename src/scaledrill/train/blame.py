@@ -109,8 +109,8 @@ class WorkerBlame:
         t = self.trainer
         if self.step is None or self.saved_step != self.step:
             return None  # no weights of this step were kept
-        live = {n: p.detach().clone() for n, p in t.model.named_parameters()}
-        live_buffers = {n: b.detach().clone() for n, b in t.model.named_buffers()}
+        live = {n: p.detach().clone() for n, p in self.params.items()}
+        live_buffers = {n: b.detach().clone() for n, b in self.buffers.items()}
         try:
             with torch.enable_grad():
                 rows, samples = self._worker_rows()

@@ -74,9 +74,8 @@ class Trainer:
         self.precision = Precision(cfg.train)  # autocast, 16-bit accumulation, loss scaling
         self.grads.accum_dtype = self.precision.accum_dtype
         self.path = self._choose_path(cfg.train.grads)
+        self.kept = self.grads.kept_buffer() if self.path == "fused" else None  # the fused gradient, for the run
         self.overlap = self._overlap()
-        # The fused path's gradient buffer, kept for the run where no overlap keeps its own.
-        self.kept = self.grads.kept_buffer() if self.path == "fused" and self.overlap is None else None
         check_fits(self)  # before the first step allocates
         self.batchnorm = cfg.train.batchnorm
         if self.batchnorm == "global":
@@ -122,7 +121,7 @@ class Trainer:
             return None
         itemsize = torch.empty((), dtype=self.dtype).element_size()
         starts = self.sync.bucket_starts(self.grads.flat.spans(), itemsize)
-        return OverlappedFused(self.grads, starts, self.dtype) if starts is not None else None
+        return OverlappedFused(self.grads, starts, self.kept) if starts is not None else None
 
     # -- one step ------------------------------------------------------------
     def _micro_batches(self, step: int) -> list[dict]:
@@ -192,7 +191,7 @@ class Trainer:
         with self.precision.autocast():
             if overlapped:
                 result = self.overlap.compute(micro, scale * S)
-            elif path == "fused" and self.kept is not None:
+            elif path == "fused":
                 result = self.grads.fused(micro, scale * S, into=self.kept)
             else:
                 result = self.grads.compute(micro, scale * S, path)

@@ -49,11 +49,6 @@ class StepGrads:
     loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
 
 
-def _sum_loss(loss, model, batch, scale, step=0, dropouts=None):
-    key_samples(model if dropouts is None else dropouts, batch.get("index"), step)
-    return forward_loss(model, loss, batch) * scale
-
-
 class GradComputer:
     """Computes StepGrads for the micro-batches of one process."""
 
@@ -68,7 +63,7 @@ class GradComputer:
         self.numel = sum(p.numel() for p in self.params)
         self.flat = FlatLayout(self.params)
         self.dropouts = sample_dropouts(model)
-        self._written: tuple = (None, [])  # where the .grad views of the last `write_grads` point, and they
+        self._written: tuple = (None, [])  # (pointer, size, dtype) of the vector the .grads view, and those views
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
@@ -80,6 +75,11 @@ class GradComputer:
                                   if isinstance(m, NO_VMAP)), None)
         self.accum_dtype = None  # dtype the micro-batch gradients are summed in; None = the parameters' (train/precision.py)
 
+    def _sum_loss(self, batch: dict, scale: float) -> torch.Tensor:
+        """The scaled loss sum of `batch`, its dropout masks keyed by its samples and the step."""
+        key_samples(self.dropouts, batch.get("index"), self.step)
+        return forward_loss(self.model, self.loss, batch) * scale
+
     def _accumulator(self, rows: int) -> torch.Tensor:
         return torch.zeros(rows, self.numel, dtype=self.accum_dtype or self.params[0].dtype)
 
@@ -90,7 +90,7 @@ class GradComputer:
         out, views = None, None
         total = 0.0
         for batch in micro:
-            value = _sum_loss(self.loss, self.model, batch, scale, self.step, self.dropouts)
+            value = self._sum_loss(batch, scale)
             grads = torch.autograd.grad(value, self.params)
             if out is None:  # the first micro-step's gradients are the buffer: one copy, no zero fill
                 if into is not None:
@@ -135,7 +135,7 @@ class GradComputer:
         return self._per_worker(micro, scale)
 
     def _forward_sum(self, scale: float):
-        return lambda batch: _sum_loss(self.loss, self.model, batch, scale, self.step, self.dropouts)
+        return lambda batch: self._sum_loss(batch, scale)
 
     def _check_rules(self, micro: list[dict], scale: float) -> StepGrads:
         """First call: rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
@@ -218,7 +218,7 @@ class GradComputer:
             views = self.flat.views(out[v])
             for batch in split:
                 one = {k: t[v] for k, t in batch.items()}
-                value = _sum_loss(self.loss, self.model, one, scale, self.step, self.dropouts)
+                value = self._sum_loss(one, scale)
                 torch._foreach_add_(views, torch.autograd.grad(value, self.params))
                 total += float(value.detach())
             for n in ends:

@@ -20,14 +20,13 @@ from functools import partial
 import torch
 
 from scaledrill.sync.overlap import BucketStarts
-from scaledrill.train.grads import GradComputer, StepGrads
+from scaledrill.train.grads import GradComputer, KeptBuffer, StepGrads
 
 
 class OverlappedFused:
-    def __init__(self, grads: GradComputer, starts: BucketStarts, dtype: torch.dtype):
+    def __init__(self, grads: GradComputer, starts: BucketStarts, kept: KeptBuffer):
         self.grads, self.starts = grads, starts
-        self.flat = torch.zeros(1, grads.numel, dtype=dtype)
-        self.views = grads.flat.views(self.flat[0])
+        self.flat, self.views = kept.flat, kept.views  # the fused path's buffer, kept for the run
         self.micro: int | None = None  # micro-batch whose backward runs; None outside `compute` (other paths, blame)
         self.last = False
         for i, p in enumerate(grads.params):
