@@ -16,6 +16,10 @@ ROOT = Path(__file__).resolve().parents[1]
 CONFIGS = str(ROOT / "src" / "scaledrill" / "conf")
 SCALEDRILL = [sys.executable, "-m", "scaledrill.cli"]
 
+# The ranks the tests spawn themselves pair on the loopback device, as the launcher's do
+# (gloo otherwise picks the device the host name resolves to).
+os.environ.setdefault("GLOO_SOCKET_IFNAME", "lo")
+
 
 def make_config(*overrides: str, name: str = "run"):
     """The composed config of a verb, as Hydra would build it from the command line; a

@@ -34,8 +34,13 @@ RTOL = 1e-5
 @pytest.fixture(scope="module")
 def job(tmp_path_factory):
     out = tmp_path_factory.mktemp("cluster")
-    subprocess.run([sys.executable, str(ROOT / "tests" / "plain_ddp_job.py"), str(out)], check=True, timeout=300,
-                   capture_output=True, env={"OMP_NUM_THREADS": "1", "PATH": "/usr/bin:/bin"})
+    # gloo pairs on the loopback device, as our own launcher keeps them; a failure shows the job's
+    # stderr (it failed once on CI with nothing to read)
+    env = {"OMP_NUM_THREADS": "1", "PATH": "/usr/bin:/bin", "GLOO_SOCKET_IFNAME": "lo"}
+    done = subprocess.run([sys.executable, str(ROOT / "tests" / "plain_ddp_job.py"), str(out)], timeout=300,
+                          capture_output=True, text=True, env=env)
+    if done.returncode:
+        pytest.fail(f"the plain DDP job exited {done.returncode}:\n{done.stderr[-4000:]}")
     rows = list(csv.DictReader(open(out / "job.csv")))
     return out, {int(r["step"]): r for r in rows}
 
