@@ -19,8 +19,9 @@ def reference_rows(model, loss, batch, scale):
     rows = []
     for v in range(V):
         part = {k: t[v * B : (v + 1) * B] for k, t in batch.items()}
-        grads = torch.autograd.grad(loss(model(part["input"]), part) * scale, list(model.parameters()))
-        rows.append(torch.cat([g.reshape(-1) for g in grads]))
+        params = list(model.parameters())
+        grads = torch.autograd.grad(loss(model(part["input"]), part) * scale, params, allow_unused=True)
+        rows.append(torch.cat([(torch.zeros_like(p) if g is None else g).reshape(-1) for p, g in zip(params, grads)]))
     return torch.stack(rows)
 
 
@@ -44,6 +45,23 @@ class SharedSequenceNet(nn.Module):
         x = torch.tanh(self.norm(self.shared(x)))
         x = torch.tanh(self.shared(x))
         return self.head(x.mean(1))
+
+
+class UnevenSharedNet(nn.Module):
+    """A shared Linear and LayerNorm called three times, the last call on a sequence (its calls
+    cannot all be joined), and a Linear the forward never calls (its rows are zero)."""
+
+    def __init__(self, d=4):
+        super().__init__()
+        self.shared, self.norm = nn.Linear(d, d), nn.LayerNorm(d)
+        self.unused = nn.Linear(d, d)
+        self.head = nn.Linear(d, 2)
+
+    def forward(self, x):
+        h = torch.tanh(self.norm(self.shared(x)))
+        h = torch.tanh(self.norm(self.shared(h)))
+        seq = torch.tanh(self.shared(torch.stack([h, x], dim=1))).mean(1)
+        return self.head(h + seq)
 
 
 class TiedNet(nn.Module):
@@ -89,6 +107,15 @@ def test_shared_layer_embedding_with_padding_and_sequence_positions():
     torch.manual_seed(0)
     computer, kept = run_twice(SharedSequenceNet(), lambda g: torch.randint(0, 7, (V * B, 4), generator=g), 2)
     assert computer.rule_cause is None and kept == [True, True]
+
+
+def test_shared_calls_of_several_shapes_and_a_parameter_no_call_reaches():
+    torch.manual_seed(0)
+    computer, kept = run_twice(UnevenSharedNet(), lambda g: torch.randn(V * B, 4, generator=g, dtype=torch.float64), 2)
+    assert computer.rule_cause is None and kept == [True, True]
+    got = computer.compute(batches(lambda g: torch.randn(V * B, 4, generator=g, dtype=torch.float64), 2, 3), 0.5, "vmap")
+    start, size = computer.rules.slots[id(computer.model.unused)]["weight"]
+    assert torch.equal(got.local[:, start : start + size], torch.zeros(V, size, dtype=torch.float64))
 
 
 def test_convolution_and_ghost_batch_norm_with_per_worker_statistics():

@@ -16,7 +16,8 @@ here summed within each worker's b samples:
   y = x̂ ⊙ w + c:   ∂w[v] = Σ_{i∈v} g_i ⊙ x̂_i, ∂c[v] = Σ_{i∈v} g_i, with x̂
   recomputed from x by the module's own group statistics.
 Extra dimensions (sequence or spatial positions) are summed with the samples. A module called
-several times (a shared layer) adds the rows of every call.
+several times (a shared layer) adds the rows of every call; a Linear, LayerNorm or Embedding
+has its calls joined first, as if each worker had calls·b samples (one batched matmul).
 
 When: every module that holds parameters is one of these stock classes. A model
 can still break the premise (a parameter also used outside its module, as a tied
@@ -32,6 +33,7 @@ from torch.nn import functional as F
 from scaledrill.nn.ghost_bn import GhostBatchNorm
 
 RULED = (nn.Linear, nn.LayerNorm, nn.Embedding, nn.Conv2d, GhostBatchNorm)
+PER_SAMPLE = (nn.Linear, nn.LayerNorm, nn.Embedding)  # rules that see each sample alone: calls can be joined
 # Agreement with vmap on the first call, per parameter: |rule - vmap| <= RTOL·max|vmap| + ATOL.
 # Rounding differs between the two (other summation orders); a wrong premise differs by O(1).
 RTOL, ATOL = 1e-3, 1e-12  # common practice for "same up to float rounding" at float32
@@ -123,10 +125,12 @@ class RuleRows:
         self.numel = offset
         self.modules = [m for m in model.modules() if type(m) in RULES and any(True for _ in m.parameters(recurse=False))]
         self.slots = {id(m): {k: where[id(p)] for k, p in m.named_parameters(recurse=False)} for m in self.modules}
+        self.all_slots = list(where.values())
 
     def compute(self, model, forward_sum, micro: list[dict], dtype) -> tuple[torch.Tensor, float]:
         """Rows [V, n] and the summed loss; `forward_sum(batch)` runs the model and returns the scaled loss sum."""
-        out = torch.zeros(self.V, self.numel, dtype=dtype)
+        out = torch.empty(self.V, self.numel, dtype=dtype)
+        written: set[tuple[int, int]] = set()  # slots of the parameters that have rows so far
         total = 0.0
         for batch in micro:
             calls = []
@@ -144,14 +148,40 @@ class RuleRows:
             if any(x.shape[0] != n or y.shape[0] != n for _, x, y in calls):
                 raise ValueError("a ruled module saw an input whose dim 0 is not the samples")
             outs = torch.autograd.grad(value, [y for _, _, y in calls], allow_unused=True)
-            for (module, x, _), g in zip(calls, outs):
-                if g is None:
-                    continue
-                for key, rows in RULES[type(module)](module, x.detach(), g, self.V).items():
-                    start, size = self.slots[id(module)][key]
-                    out[:, start : start + size] += rows.reshape(self.V, size)
+            for module, x, g in self._joined(calls, outs):
+                for key, rows in RULES[type(module)](module, x, g, self.V).items():
+                    slot = start, size = self.slots[id(module)][key]
+                    target = out[:, start : start + size]
+                    if slot in written:
+                        target += rows.reshape(self.V, size)
+                    else:  # a parameter's first rows are copied: no zero fill to add them to
+                        target.copy_(rows.reshape(self.V, size))
+                        written.add(slot)
             total += float(value.detach())
+        for start, size in set(self.all_slots) - written:  # a parameter no call reached has zero rows
+            out[:, start : start + size].zero_()
         return out, total
+
+    def _joined(self, calls: list, outs: tuple) -> list:
+        """(module, x, g) per module: the calls of a shared per-sample module joined into one,
+        each worker's samples of every call side by side, so one batched matmul with K = calls·b
+        replaces a matmul per call and the adding up of their rows."""
+        by_module: dict[int, list] = {}
+        for (module, x, _), g in zip(calls, outs):
+            if g is not None:
+                by_module.setdefault(id(module), []).append((module, x.detach(), g))
+        joined = []
+        for group in by_module.values():
+            module = group[0][0]
+            same_shape = len({tuple(x.shape[1:]) for _, x, _ in group}) == 1
+            if len(group) == 1 or not isinstance(module, PER_SAMPLE) or not same_shape:
+                joined += group
+                continue
+            V = self.V
+            x = torch.cat([x.reshape(V, -1, *x.shape[1:]) for _, x, _ in group], dim=1).flatten(0, 1)
+            g = torch.cat([g.reshape(V, -1, *g.shape[1:]) for _, _, g in group], dim=1).flatten(0, 1)
+            joined.append((module, x, g))
+        return joined
 
 
 def agree(rule: torch.Tensor, reference: torch.Tensor, params: list[torch.Tensor]) -> bool:
