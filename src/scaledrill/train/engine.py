@@ -119,7 +119,7 @@ class Trainer:
         accum = self.precision.accum_dtype
         if self.path != "fused" or (accum is not None and accum != self.dtype):
             return None
-        itemsize = torch.empty((), dtype=self.dtype).element_size()
+        itemsize = self.dtype.itemsize
         starts = self.sync.bucket_starts(self.grads.flat.spans(), itemsize)
         return OverlappedFused(self.grads, starts, self.kept) if starts is not None else None
 

@@ -81,7 +81,7 @@ def check_fits(trainer) -> None:
         return
     layout = trainer.layout
     n_params = sum(p.numel() for p in trainer.params)
-    element = torch.empty((), dtype=trainer.dtype).element_size()
+    element = trainer.dtype.itemsize
     need = layout.procs * step_bytes(layout, trainer.path != "fused", n_params, element, data, activations)
     if need > available:
         raise ConfigError(

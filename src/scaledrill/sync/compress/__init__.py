@@ -87,7 +87,7 @@ class Compressor(Protocol):
 
 
 def dense_bytes(n: int, dtype: torch.dtype) -> int:
-    return n * torch.empty((), dtype=dtype).element_size()
+    return n * dtype.itemsize
 
 
 def build(cfg) -> Compressor:

@@ -43,5 +43,5 @@ class Cast:
         # what each worker sent, rounded as it travelled: the rows just cast when the inner sends those (Exact does)
         small = last[1] if last and last[0] is out.sent else (out.sent / W).to(self.dtype)
         sent = small.to(x.dtype) * W
-        shrink = torch.empty((), dtype=self.dtype).element_size() / x.element_size()
+        shrink = self.dtype.itemsize / x.element_size()
         return Out(out.mean, sent, out.wire_bytes * shrink, out.stats), state
