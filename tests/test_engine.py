@@ -71,3 +71,22 @@ def test_digits_reaches_a_sensible_test_accuracy():
     assert summary["eval"]["accuracy"] >= 0.93, summary["eval"]
     assert summary["samples_seen"] == 300 * 32
     assert summary["dropped_samples"] == (1437 % 32) * (300 // (1437 // 32))
+
+
+def test_noise_steps_without_rows_give_the_rows_noise_statistics():
+    """From its second noise step on, the fused path measures each worker's |g|² without the [W, n]
+    rows (train/rows.py, Gram matrices and per-module rows); a twin trainer kept on the rows gives
+    the same squared norms, loss and weights. digits (convolutions, ghost BN) and the teacher MLP."""
+    for task in ("task=digits", "task=teacher"):
+        base = (task, "layout.workers=4", "layout.micro_batch=4", "layout.accum=2", "train.dtype=float64",
+                "telemetry.noise_every=1")
+        norms, rows = _trainer(*base), _trainer(*base)
+        rows.sync_is_exact = False  # the engine's route to the rows (and to the exact sum, equal here)
+        for step in range(3):
+            a, b = norms.step(), rows.step()
+            assert a.small_sq is not None and a.small_sq > 0
+            for key in ("small_sq", "big_sq", "loss", "grad_norm"):
+                want = getattr(b, key)
+                assert abs(getattr(a, key) - want) <= F64_RTOL * abs(want), (task, step, key)
+        assert norms.grads.rules_ready  # the rules served the later steps
+        assert torch.allclose(flatten_params(norms.params), flatten_params(rows.params), rtol=F64_RTOL, atol=1e-12)

@@ -5,6 +5,7 @@ its own samples' scaled loss on the same model. Float64, so the rows agree to
 rounding (1e-10 relative); a wrong grouping of samples would differ by O(1).
 """
 
+import pytest
 import torch
 from torch import nn
 
@@ -137,3 +138,34 @@ def test_a_module_without_a_rule_keeps_vmap():
     computer = GradComputer(model.double(), MSESum(), V)
     assert computer.rules is None and "Conv1d" in computer.rule_cause
 
+
+
+def wide_mlp():
+    # Its first Linear takes the Gram route: K = 3 samples x 2 micro-batches = 6 per worker, and
+    # K·(16 + 16) < 16·16; its head takes the rows (6·(16 + 2) > 16·2).
+    return nn.Sequential(nn.Linear(16, 16), nn.Tanh(), nn.LayerNorm(16), nn.Linear(16, 2))
+
+
+@pytest.mark.parametrize("model, make_input, out_dim", [
+    (wide_mlp, lambda g: torch.randn(V * B, 16, generator=g, dtype=torch.float64), 2),
+    (SharedSequenceNet, lambda g: torch.randint(0, 7, (V * B, 4), generator=g), 2),
+    (UnevenSharedNet, lambda g: torch.randn(V * B, 4, generator=g, dtype=torch.float64), 2),
+    (lambda: nn.Sequential(nn.Conv2d(2, 3, 3, padding=1), GhostBatchNorm(3, group_size=B), nn.ReLU(), nn.Flatten(),
+                           nn.Linear(3 * 4 * 4, 2)),
+     lambda g: torch.randn(V * B, 2, 4, 4, generator=g, dtype=torch.float64), 2),
+], ids=["gram-linear", "shared-sequence", "uneven-shared", "conv-ghost-bn"])
+def test_fused_gradient_and_each_workers_square_norm_without_rows(model, make_input, out_dim):
+    """The noise step's quantities over two micro-batches: the summed gradient and Σ_w |g_w|²,
+    against each worker's own gradient by plain autograd (summed over its micro-batches)."""
+    torch.manual_seed(0)
+    model = model().double()
+    computer = GradComputer(model, MSESum(), V)
+    micro = [batches(make_input, out_dim, seed)[0] for seed in (1, 2)]
+    per_worker = sum(reference_rows(model, MSESum(), batch, 0.5) for batch in micro)
+    flat = torch.full((computer.numel,), float("nan"), dtype=torch.float64)
+    total, square = computer.rules.fused_square_norms(computer._forward_sum(0.5), micro, computer.flat.views(flat))
+    assert_rows(flat.unsqueeze(0), per_worker.sum(0, keepdim=True))
+    want = float(per_worker.square().sum())
+    assert abs(square - want) <= 1e-10 * want
+    with torch.no_grad():
+        assert total == pytest.approx(sum(float(MSESum()(model(b["input"]), b)) * 0.5 for b in micro), rel=1e-12)

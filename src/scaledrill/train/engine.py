@@ -185,12 +185,17 @@ class Trainer:
             self.blame.before(step, micro)
         scale = self.layout.workers / self._global_count(micro)
         noise = self._noise_due(step)
-        path = "vmap" if noise and self.path == "fused" else self.path
+        # A noise step on exact averaging needs each worker's |g|², not its gradient: the rules give
+        # it from the fused pass once their first call has been checked against vmap (train/rows.py).
+        norms_only = noise and self.path == "fused" and self.sync_is_exact and self.grads.rules_ready
+        path = "vmap" if noise and self.path == "fused" and not norms_only else self.path
         self.grads.step = step
         S = self.precision.loss_scale  # 1 unless the loss is scaled
-        overlapped = self.overlap is not None and path == "fused"
+        overlapped = self.overlap is not None and path == "fused" and not norms_only
         with self.precision.autocast():
-            if overlapped:
+            if norms_only:
+                result = self.grads.fused_square_norms(micro, scale * S, self.kept)
+            elif overlapped:
                 result = self.overlap.compute(micro, scale * S)
             elif path == "fused":
                 result = self.grads.fused(micro, scale * S, into=self.kept)
@@ -198,7 +203,9 @@ class Trainer:
                 result = self.grads.compute(micro, scale * S, path)
         result.local = self.precision.widen(result.local, self.dtype)
         flag = getattr(self, "stop_flag", None)
-        local_sq = _square_norm(result.local) if noise else 0.0  # before the sync may reuse `local`
+        local_sq = 0.0
+        if noise:  # before the sync may reuse `local`
+            local_sq = result.worker_square if norms_only else _square_norm(result.local)
         shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and not self.sync_is_exact else None
         if overlapped:

@@ -47,6 +47,7 @@ NO_VMAP = (torch.nn.RNNBase,)
 class StepGrads:
     local: torch.Tensor  # [1, n] (fused) or [V, n] (per-worker)
     loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
+    worker_square: float | None = None  # Σ over the process's workers of |g_w|², when asked without rows
 
 
 class GradComputer:
@@ -105,6 +106,17 @@ class GradComputer:
                 torch._foreach_add_(views, grads)
             total += float(value.detach())
         return StepGrads(out, total)
+
+    def fused_square_norms(self, micro: list[dict], scale: float, into: "KeptBuffer") -> StepGrads:
+        """`fused` into `into`, plus each worker's squared gradient norm summed over the process's
+        workers, from the same pass (RuleRows.fused_square_norms): a noise step without rows."""
+        total, square = self.rules.fused_square_norms(self._forward_sum(scale), micro, into.views)
+        return StepGrads(into.flat, total, worker_square=square)
+
+    @property
+    def rules_ready(self) -> bool:
+        """The per-worker rules serve this model (their first call agreed with vmap)."""
+        return self.rules is not None and self.rules_checked
 
     def kept_buffer(self) -> "KeptBuffer":
         """A [1, n] gradient buffer for `fused(into=...)`, in the dtype the micro-steps are summed in."""
