@@ -140,6 +140,19 @@ def test_a_module_without_a_rule_keeps_vmap():
 
 
 
+class TwoShapeNet(nn.Module):
+    """A wide Linear called on samples and on sequences of them: the Gram route's calls cannot be
+    joined (K = 18 a worker over 2 micro-batches: 18·128 < 64·64), so its norms fall back to rows."""
+
+    def __init__(self, d=64):
+        super().__init__()
+        self.mix, self.head = nn.Linear(d, d), nn.Linear(d, 2)
+
+    def forward(self, x):
+        h = torch.tanh(self.mix(x))
+        return self.head(h + torch.tanh(self.mix(torch.stack([h, x], dim=1))).mean(1))
+
+
 def wide_mlp():
     # Its first Linear takes the Gram route: K = 3 samples x 2 micro-batches = 6 per worker, and
     # K·(16 + 16) < 16·16; its head takes the rows (6·(16 + 2) > 16·2).
@@ -153,7 +166,8 @@ def wide_mlp():
     (lambda: nn.Sequential(nn.Conv2d(2, 3, 3, padding=1), GhostBatchNorm(3, group_size=B), nn.ReLU(), nn.Flatten(),
                            nn.Linear(3 * 4 * 4, 2)),
      lambda g: torch.randn(V * B, 2, 4, 4, generator=g, dtype=torch.float64), 2),
-], ids=["gram-linear", "shared-sequence", "uneven-shared", "conv-ghost-bn"])
+    (TwoShapeNet, lambda g: torch.randn(V * B, 64, generator=g, dtype=torch.float64), 2),
+], ids=["gram-linear", "shared-sequence", "uneven-shared", "conv-ghost-bn", "gram-unjoined"])
 def test_fused_gradient_and_each_workers_square_norm_without_rows(model, make_input, out_dim):
     """The noise step's quantities over two micro-batches: the summed gradient and Σ_w |g_w|²,
     against each worker's own gradient by plain autograd (summed over its micro-batches)."""

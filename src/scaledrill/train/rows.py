@@ -20,9 +20,9 @@ several times (a shared layer) adds the rows of every call; a Linear, LayerNorm 
 has its calls joined first, as if each worker had calls·b samples (one batched matmul).
 
 A noise-scale step on exact averaging needs only Σ_w |∂θ[w]|² beside the summed gradient:
-`fused_square_norms` takes both from the same pass, without the [V, n] rows, a Linear weight's
-share from two K×K Gram matrices a worker (K its samples and positions) when they are the
-smaller: on an MLP of 3.2M parameters at W=16, 1.15x a fused step against 8.3x with the rows.
+`fused_square_norms` takes both from the same pass, a Linear weight's share from two K×K Gram
+matrices a worker (K its samples and positions) instead of its [out, in] rows when they are the
+smaller: on an MLP of 3.2M parameters at W=16, ~1.15x a fused step against ~8x with the rows.
 
 When: every module that holds parameters is one of these stock classes. A model
 can still break the premise (a parameter also used outside its module, as a tied
@@ -129,14 +129,16 @@ class RuleRows:
             offset += p.numel()
         self.numel = offset
         self.params = list(params)
+        self.where = where  # parameter id -> (start, size) in the flat vector
+        self.index = {id(p): i for i, p in enumerate(self.params)}
         self.modules = [m for m in model.modules() if type(m) in RULES and any(True for _ in m.parameters(recurse=False))]
         self.slots = {id(m): {k: where[id(p)] for k, p in m.named_parameters(recurse=False)} for m in self.modules}
         self.all_slots = list(where.values())
 
-    def _passes(self, forward_sum, micro: list[dict], wrt: list[torch.Tensor]):
+    def _passes(self, forward_sum, micro: list[dict], wrt=lambda calls: []):
         """Per micro-batch, one fused forward and backward: yields the scaled loss sum, its gradients
-        with respect to `wrt` (None where unused) and (module, input, output gradient) of every call
-        of a ruled module, a shared module's calls joined (`_joined`)."""
+        with respect to the tensors `wrt(calls)` names (None where unused) and (module, input, output
+        gradient) of every call of a ruled module, a shared module's calls joined (`_joined`)."""
         for batch in micro:
             calls = []
 
@@ -152,15 +154,16 @@ class RuleRows:
             n = batch["input"].shape[0]
             if any(x.shape[0] != n or y.shape[0] != n for _, x, y in calls):
                 raise ValueError("a ruled module saw an input whose dim 0 is not the samples")
-            grads = torch.autograd.grad(value, [*wrt, *(y for _, _, y in calls)], allow_unused=True)
-            yield value, grads[: len(wrt)], self._joined(calls, grads[len(wrt) :])
+            wanted = wrt(calls)
+            grads = torch.autograd.grad(value, [*wanted, *(y for _, _, y in calls)], allow_unused=True)
+            yield value, grads[: len(wanted)], self._joined(calls, grads[len(wanted) :])
 
     def compute(self, model, forward_sum, micro: list[dict], dtype) -> tuple[torch.Tensor, float]:
         """Rows [V, n] and the summed loss; `forward_sum(batch)` runs the model and returns the scaled loss sum."""
         out = torch.empty(self.V, self.numel, dtype=dtype)
         written: set[tuple[int, int]] = set()  # slots of the parameters that have rows so far
         total = 0.0
-        for value, _, joined in self._passes(forward_sum, micro, []):
+        for value, _, joined in self._passes(forward_sum, micro):
             for module, x, g in joined:
                 for key, rows in RULES[type(module)](module, x, g, self.V).items():
                     slot = start, size = self.slots[id(module)][key]
@@ -177,38 +180,79 @@ class RuleRows:
 
     def fused_square_norms(self, forward_sum, micro: list[dict], views: list[torch.Tensor]) -> tuple[float, float]:
         """The process's summed gradient, into `views` (one per parameter), and Σ over its workers of
-        |g_w|², from the same one pass per micro-batch, without the [V, n] rows: what a noise-scale
-        step needs on exact averaging. Returns (summed loss, Σ_w |g_w|²). The premise is the rows'
-        (checked against vmap by the caller first)."""
-        total, seen = 0.0, {}
-        for k, (value, grads, joined) in enumerate(self._passes(forward_sum, micro, self.params)):
-            grads = [torch.zeros_like(p) if d is None else d for p, d in zip(self.params, grads)]
-            (torch._foreach_copy_ if k == 0 else torch._foreach_add_)(views, grads)
-            for module, x, g in joined:  # every micro-batch's samples: a worker's gradient sums over them
-                seen.setdefault(id(module), []).append((module, x, g))
+        |g_w|², from the same one pass per micro-batch: what a noise-scale step needs on exact
+        averaging. Returns (summed loss, Σ_w |g_w|²). The premise is the rows' (checked against
+        vmap by the caller first).
+
+        A Linear whose Gram matrices are smaller than its weight's rows (`_by_gram`) has its summed
+        gradient from autograd and its norms from the Gram matrices; every other module its rows,
+        summed over the workers for the gradient and squared for the norms."""
+        total, gram, rows = 0.0, {}, {}
+        chosen: list[nn.Module] = []
+        asked: list[torch.Tensor] | None = None
+
+        def wrt(calls):  # chosen on the first micro-batch, kept for the others
+            nonlocal asked
+            if asked is None:
+                chosen.extend(self._by_gram(calls, len(micro)))
+                asked = [p for m in chosen for p in m.parameters(recurse=False)]
+            return asked
+
+        for k, (value, grads, joined) in enumerate(self._passes(forward_sum, micro, wrt)):
+            for p, d in zip(asked, grads):
+                view = views[self.index[id(p)]]
+                d = torch.zeros_like(p) if d is None else d
+                if k == 0:
+                    view.copy_(d)
+                else:
+                    view.add_(d)
+            for module, x, g in joined:
+                if module in chosen:
+                    gram.setdefault(id(module), []).append((module, x, g))
+                    continue
+                for key, part in RULES[type(module)](module, x, g, self.V).items():
+                    slot = self.slots[id(module)][key]
+                    rows[slot] = _wide(part) if slot not in rows else rows[slot] + part
             total += float(value.detach())
         square = torch.zeros(self.V, dtype=torch.float64)
-        for group in seen.values():
+        for group in gram.values():
             square += self._square_norms(group[0][0], self._join(group))
+        for part in rows.values():
+            square += part.reshape(self.V, -1).double().square().sum(1)
+        from_autograd = {id(p) for p in asked or []}
+        for p, view in zip(self.params, views):
+            slot = self.where[id(p)]
+            if slot in rows:
+                view.copy_(rows[slot].sum(0).reshape(view.shape))
+            elif id(p) not in from_autograd:  # a parameter no call reached
+                view.zero_()
         return total, float(square.sum())
 
+    def _by_gram(self, calls: list, micro_count: int) -> list[nn.Module]:
+        """The Linear modules whose weight's per-worker norms are cheaper from K×K Gram matrices
+        (K: a worker's samples and positions over every call and micro-batch) than from its
+        [out, in] rows: K·(in + out) < in·out."""
+        K: dict[nn.Module, int] = {}
+        for module, x, _ in calls:
+            if isinstance(module, nn.Linear):
+                K[module] = K.get(module, 0) + x.numel() // x.shape[-1] // self.V * micro_count
+        return [m for m, k in K.items() if k * (m.in_features + m.out_features) < m.in_features * m.out_features]
+
     def _square_norms(self, module: nn.Module, parts: list) -> torch.Tensor:
-        """[V]: Σ over the module's parameters of each worker's squared gradient norm. A Linear
-        weight's |Σ_{i∈w} g_i x_iᵀ|² is Σ_ij (g_i·g_j)(x_i·x_j): two K×K Gram matrices a worker
-        (K its samples and positions), when they are smaller than its [out, in] rows."""
+        """[V]: each worker's squared gradient norm over a chosen Linear's parameters. Its weight's
+        |Σ_{i∈w} g_i x_iᵀ|² is Σ_ij (g_i·g_j)(x_i·x_j): two K×K Gram matrices a worker. Calls that
+        could not be joined (inputs of several shapes) fall back to the rows."""
         V = self.V
         if isinstance(module, nn.Linear) and len(parts) == 1:
             xs, gs = (_wide(t.reshape(V, -1, t.shape[-1])) for t in parts[0])
-            K, n_in, n_out = xs.shape[1], xs.shape[2], gs.shape[2]
-            if K * (n_in + n_out) < n_in * n_out:
-                gram = torch.bmm(gs, gs.transpose(1, 2)).mul_(torch.bmm(xs, xs.transpose(1, 2)))
-                square = gram.sum((1, 2)).double()
-                return square + gs.sum(1).square().sum(1).double() if module.bias is not None else square
+            gram = torch.bmm(gs, gs.transpose(1, 2)).mul_(torch.bmm(xs, xs.transpose(1, 2)))
+            square = gram.sum((1, 2)).double()
+            return square + gs.sum(1).square().sum(1).double() if module.bias is not None else square
         sums: dict[str, torch.Tensor] = {}  # the rows of each parameter, summed over the parts
         for x, g in parts:
-            for key, rows in RULES[type(module)](module, x, g, V).items():
-                sums[key] = _wide(rows) if key not in sums else sums[key] + rows
-        return sum(rows.reshape(V, -1).double().square().sum(1) for rows in sums.values())
+            for key, part in RULES[type(module)](module, x, g, V).items():
+                sums[key] = _wide(part) if key not in sums else sums[key] + part
+        return sum(part.reshape(V, -1).double().square().sum(1) for part in sums.values())
 
     def _join(self, group: list) -> list:
         """[(x, g)] of one module's calls over the micro-batches: one pair when they can be joined."""
