@@ -47,8 +47,18 @@ def spawn_ranks(child, out_dir: Path, nprocs: int = 2) -> list:
 
     from scaledrill.dist.launch import free_port
 
-    mp.spawn(child, args=(free_port(), str(out_dir)), nprocs=nprocs)
+    mp.spawn(_ending_at_once, args=(child, free_port(), str(out_dir)), nprocs=nprocs)
     return [torch.load(Path(out_dir) / f"rank{r}.pt", weights_only=False) for r in range(nprocs)]
+
+
+def _ending_at_once(rank: int, child, port: int, out_dir: str) -> None:
+    """Run a spawned rank, then leave without the interpreter's teardown, as our rank entry point
+    does (dist/rank.py): gloo's threads destroyed during finalisation abort now and then on a
+    loaded machine ("terminate called without an active exception") after every output is written."""
+    child(rank, port, out_dir)
+    sys.stdout.flush()
+    sys.stderr.flush()
+    os._exit(0)
 
 
 def run_cli(*args: str, timeout: float = 300, env: dict | None = None, check: bool = False) -> subprocess.CompletedProcess:
