@@ -13,8 +13,10 @@ import torch
 from conftest import ROOT, run_cli
 from procs_util import processes_of, rank_worker
 
-LONG = ("task=teacher", "layout.workers=4", "layout.micro_batch=8", "train.steps=100000", "train.checkpoint_every=5",
-        "train.progress=false", "train.eval_every=0", "telemetry.flush_every=5", "train.timeout_s=20")
+# A run that only a fault ends: at the default rate this layout diverges at step ~170, under a second
+# on an idle machine, and a late signal then met a finished run (exit 0) instead of a running one.
+LONG = ("task=teacher", "layout.workers=4", "layout.micro_batch=8", "optim.lr=0.03", "train.steps=100000",
+        "train.checkpoint_every=5", "train.progress=false", "train.eval_every=0", "telemetry.flush_every=5", "train.timeout_s=20")
 
 
 def _start(*args: str) -> subprocess.Popen:
