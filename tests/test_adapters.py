@@ -7,7 +7,7 @@ from pathlib import Path
 import pytest
 import torch
 import torch.nn.functional as F
-from torch.utils.data import Dataset, TensorDataset
+from torch.utils.data import Dataset, Subset, TensorDataset, default_collate, random_split
 
 from conftest import make_config, run_cli
 from scaledrill.errors import ConfigError
@@ -34,6 +34,55 @@ def test_tuple_and_dict_samples_and_a_collate():
     pad = lambda samples: {"input": torch.stack([s["input"] for s in samples]) * 2}  # noqa: E731
     assert MapData(DictSet(), collate=pad).take(torch.tensor([5]))["input"][0, 0] == 10.0
     assert TorchData(DictSet(), DictSet()).test.size == 10
+
+
+def _collated(dataset, index, keys=("input", "target")):
+    """What the per-sample route gives: each sample fetched, then torch's default_collate."""
+    parts = default_collate([dataset[i] for i in index.tolist()])
+    return dict(zip(keys, parts))
+
+
+class Doubled(TensorDataset):
+    """A subclass that changes its samples: must not take the TensorDataset shortcut."""
+
+    def __getitem__(self, i):
+        x, y = super().__getitem__(i)
+        return x * 2, y
+
+
+class Batched(DictSet):
+    """A dataset with torch's batched fetch: asked once per batch."""
+
+    def __init__(self):
+        self.calls = 0
+
+    def __getitems__(self, indices):
+        self.calls += 1
+        return [self[i] for i in indices]
+
+
+def test_tensor_datasets_and_their_subsets_gather_what_the_collate_gives():
+    torch.manual_seed(3)
+    x, y, w = torch.randn(40, 3, 2), torch.randint(5, (40,)), torch.rand(40, dtype=torch.float64)
+    base = TensorDataset(x, y, w)
+    first, _ = random_split(base, [30, 10], generator=torch.Generator().manual_seed(0))
+    nested = Subset(first, [4, 0, 29, 7, 7])
+    index = torch.tensor([3, 1, 4, 1, 0])
+    keys = ("input", "target", "weight")
+    for dataset in (base, first, nested, TensorDataset(x)):
+        data = MapData(dataset, keys=keys)
+        assert data.tensors is not None
+        got, want = data.take(index), _collated(dataset, index, keys)
+        assert got.keys() == want.keys()
+        for k in want:
+            assert got[k].dtype == want[k].dtype and torch.equal(got[k], want[k]), k
+    doubled = MapData(Doubled(x, y))
+    assert doubled.tensors is None and torch.equal(doubled.take(index)["input"], x[index] * 2)
+    batched = Batched()
+    got = MapData(batched).take(torch.tensor([2, 5, 8]))
+    assert batched.calls == 1 and got["input"][:, 0].tolist() == [2.0, 5.0, 8.0] and got["target"].tolist() == [0, 1, 0]
+    with pytest.raises(ValueError, match="3 parts but only the keys"):
+        MapData(base).take(index)
 
 
 @pytest.mark.parametrize("fn", [torch.nn.CrossEntropyLoss(), F.cross_entropy])

@@ -11,6 +11,11 @@ follow from what torch users already have:
   `keys`); dict samples keep their keys and need an "input". The dataset must
   return the same sample for the same index (no random augmentation drawn from
   a global generator), since every worker and layout must see the same data.
+  A `TensorDataset`, or a `Subset` of one (what `random_split` returns), is
+  gathered with one `index_select` per tensor instead of a Python call per
+  sample (~2.4 ms for 512 samples otherwise, twice a small MLP's whole step on
+  CPU); a dataset with `__getitems__` (the batched fetch torch's DataLoader
+  uses) is asked once per batch. Either gives what the collate would.
 - `TorchLoss`: any torch loss module (`torch.nn.CrossEntropyLoss()`) or function
   (`torch.nn.functional.mse_loss`). It is called with `reduction="none"` and the
   per-element losses become per-unit losses by averaging over everything but the
@@ -29,7 +34,7 @@ automatically, so `task.data._target_=mypkg.MyDataset` and
 import copy
 
 import torch
-from torch.utils.data import default_collate
+from torch.utils.data import Subset, TensorDataset, default_collate
 
 
 class MapData:
@@ -40,9 +45,16 @@ class MapData:
             raise TypeError(f"{type(dataset).__name__} is not a map-style dataset (needs __getitem__ and __len__)")
         self.dataset, self.keys, self.collate = dataset, tuple(keys), collate or default_collate
         self.size = len(dataset)
+        self.tensors = _tensors_of(dataset) if collate is None else None
 
     def take(self, index: torch.Tensor) -> dict[str, torch.Tensor]:
-        batch = self.collate([self.dataset[i] for i in index.tolist()])
+        if self.tensors is not None:
+            return self._gather(index)
+        if hasattr(self.dataset, "__getitems__"):
+            samples = self.dataset.__getitems__(index.tolist())
+        else:
+            samples = [self.dataset[i] for i in index.tolist()]
+        batch = self.collate(samples)
         if isinstance(batch, (tuple, list)):
             if len(batch) > len(self.keys):
                 raise ValueError(f"samples have {len(batch)} parts but only the keys {list(self.keys)} name them")
@@ -52,6 +64,28 @@ class MapData:
         if not isinstance(batch, dict) or "input" not in batch:
             raise ValueError("collated samples must be a tuple (input, target, ...) or a dict with an 'input' key")
         return {k: torch.as_tensor(v) for k, v in batch.items()}
+
+    def _gather(self, index: torch.Tensor) -> dict[str, torch.Tensor]:
+        """The collated batch of a TensorDataset (or a Subset of one), by index_select."""
+        tensors, rows = self.tensors
+        index = index.reshape(-1) if rows is None else rows.index_select(0, index.reshape(-1))
+        if len(tensors) > len(self.keys):
+            raise ValueError(f"samples have {len(tensors)} parts but only the keys {list(self.keys)} name them")
+        return {k: t.index_select(0, index) for k, t in zip(self.keys, tensors)}
+
+
+def _tensors_of(dataset) -> tuple[list[torch.Tensor], torch.Tensor | None] | None:
+    """(tensors, rows) when `dataset` is a TensorDataset or a chain of Subsets of one:
+    sample i is (t[rows[i]] for t in tensors), rows None for every row in order."""
+    if type(dataset) is TensorDataset:  # exactly: a subclass may override __getitem__
+        return list(dataset.tensors), None
+    if type(dataset) is Subset:
+        inner = _tensors_of(dataset.dataset)
+        if inner is not None:
+            tensors, rows = inner
+            picked = torch.as_tensor(dataset.indices, dtype=torch.long)
+            return tensors, picked if rows is None else rows.index_select(0, picked)
+    return None
 
 
 class TorchData:
