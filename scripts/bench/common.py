@@ -37,9 +37,19 @@ def trainer(*overrides: str, workers: int = WORKERS, micro: int = MICRO, collect
     return Trainer(config(*overrides, workers=workers, micro=micro), collective or LocalCollective())
 
 
-def step0_fetch(tr):
-    """A function that gathers this process's samples of step 0 from the training set,
-    as any hand-written loop indexes its batch each step (the baselines do it too)."""
-    index = tr.sampler.worker_batches(0, tr.workers)[0].reshape(-1)
+def batch_fetch(tr):
+    """A function that gathers this process's samples of the next step from the training set,
+    walking the run's own sample order (one epoch of indices, then around again), as a
+    hand-written loop over a shuffled in-memory set takes different rows each step. The same
+    rows every step would stay in the CPU's caches and flatter the baseline."""
     data = tr.task.data.train
-    return lambda: data.take(index)
+    steps = max(1, data.size // tr.layout.global_batch) if data.size else 64
+    indices = [tr.sampler.worker_batches(s, tr.workers)[0].reshape(-1) for s in range(steps)]
+    at = 0
+
+    def fetch():
+        nonlocal at
+        at = (at + 1) % steps
+        return data.take(indices[at])
+
+    return fetch

@@ -21,7 +21,7 @@ import torch.multiprocessing as mp
 from scaledrill.dist.launch import free_port
 from scaledrill.sync.settings import SyncConfig
 
-from .common import MICRO, WORKERS, pin_threads, step0_fetch, trainer
+from .common import MICRO, WORKERS, pin_threads, batch_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 PROCS = 2
@@ -40,7 +40,7 @@ def ddp_step(tr):
     model = DistributedDataParallel(copy.deepcopy(tr.model))
     node = tr.cfg.optim
     opt = torch.optim.SGD(model.parameters(), lr=tr.recipe.lr_at(0), momentum=node.get("momentum", 0.0))
-    fetch = step0_fetch(tr)
+    fetch = batch_fetch(tr)
     loss, share = tr.task.loss, tr.layout.global_batch / PROCS
 
     def step():

@@ -25,7 +25,7 @@ import torch
 from scaledrill.tasks.base import build_task
 from scaledrill.telemetry.settings import DEFAULTS
 
-from .common import MICRO, WORKERS, step0_fetch, trainer
+from .common import MICRO, WORKERS, batch_fetch, trainer
 from .single import observed
 from .timing import Row, interleave, ms, ratios
 
@@ -51,7 +51,7 @@ def plain_step(tr):
     """One step of a hand-written torch loop on the trainer's first global batch."""
     model = stock_model(tr)
     opt = torch.optim.SGD(model.parameters(), lr=tr.recipe.lr_at(0), momentum=tr.cfg.optim.get("momentum", 0.0))
-    fetch = step0_fetch(tr)
+    fetch = batch_fetch(tr)
     loss = tr.task.loss
 
     def step():

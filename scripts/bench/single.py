@@ -11,7 +11,7 @@ from pathlib import Path
 
 import torch
 
-from .common import MICRO, WORKERS, step0_fetch, trainer
+from .common import MICRO, WORKERS, batch_fetch, trainer
 from .timing import Row, interleave, ms, ratios
 
 COMPRESSORS = ("fp16", "bf16", "topk", "randk", "sign", "qsgd", "powersgd")
@@ -28,7 +28,7 @@ def plain_step(tr):
     model = copy.deepcopy(tr.model)
     node = tr.cfg.optim
     opt = torch.optim.SGD(model.parameters(), lr=tr.recipe.lr_at(0), momentum=node.get("momentum", 0.0))
-    fetch = step0_fetch(tr)
+    fetch = batch_fetch(tr)
     loss, count = tr.task.loss, float(tr.layout.global_batch)
 
     def step():
