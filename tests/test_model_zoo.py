@@ -157,6 +157,46 @@ def test_stock_batchnorm_run_has_no_loss_jumps_at_noise_scale_steps():
     assert losses[-1] < 0.5 * losses[0]  # and it trains
 
 
+@pytest.mark.parametrize("name", ["PaddedGRU", "RowsLSTM"])
+def test_a_recurrent_models_noise_step_measures_a_drawn_sample_of_workers(name):
+    """Only the loop gives a recurrent model's per-worker gradients (~W small passes, ~20x a fused
+    step at W=64), so its noise step measures telemetry.noise_workers workers drawn anew each step:
+    small_sq is their mean |g_w|^2 (an unbiased estimate of the mean over all W), each g_w the
+    gradient of a plain float64 copy of the stock model on that worker's samples alone; the
+    big-batch norm stays exact. noise_workers=0 measures every worker."""
+    for k in (2, 0):
+        cfg = make_config(*model_overrides(name), f"layout.workers={W}", f"layout.micro_batch={B_MICRO}",
+                          "train.progress=false", "telemetry.noise_every=1", f"telemetry.noise_workers={k}")
+        trainer = Trainer(cfg, LocalCollective())
+        assert trainer.path == "fused" and trainer.grads.vmap_failure is not None
+        micro = trainer._micro_batches(0)
+        per_worker = plain_worker_grads(trainer, micro[0], W / trainer._global_count(micro))
+        chosen = trainer._noise_sample(0) if k else list(range(W))
+        assert len(set(chosen)) == (k or W)
+        record = trainer.step()
+        want_small = float(per_worker[chosen].square().sum(1).mean())
+        want_big = float(per_worker.mean(0).square().sum())
+        assert record.small_sq == pytest.approx(want_small, rel=1e-5), (k, chosen)
+        assert record.big_sq == pytest.approx(want_big, rel=1e-5), k
+        assert float(per_worker.square().sum(1).std()) > 1e-3 * want_small  # the workers differ: the draw matters
+
+
+def test_the_noise_steps_draw_of_workers_is_the_same_on_every_layout_and_varies_by_step():
+    from scaledrill.train.engine import noise_sample
+
+    W, k = 16, 5
+    draws = []
+    for step in range(6):
+        whole = noise_sample(7, step, W, k, range(W))
+        assert len(whole) == k and len(set(whole)) == k and all(0 <= w < W for w in whole)
+        for P in (2, 4):
+            V = W // P
+            shares = [[V * r + v for v in noise_sample(7, step, W, k, range(V * r, V * (r + 1)))] for r in range(P)]
+            assert sorted(sum(shares, [])) == whole, (step, P)
+        draws.append(tuple(whole))
+    assert len(set(draws)) > 1 and noise_sample(7, 0, W, W, range(W)) == list(range(W))
+
+
 def test_recurrent_model_falls_back_to_loop_with_one_line(capsys):
     trainer = trainer_for("PaddedGRU", "train.grads=vmap", progress=True)
     assert trainer.path == "loop"

@@ -306,6 +306,7 @@ TELEMETRY: dict[str, Rule] = {
     "layer_every": (_whole_at_least(0), "must be a whole number of at least 0"),
     "flush_every": (_whole_at_least(1), "must be a whole number of at least 1"),
     "noise_every": (_whole_at_least(0), "must be a whole number of at least 0"),
+    "noise_workers": (_whole_at_least(0), "must be a whole number of at least 0 (0 = every worker)"),
     "blame": TRUE_OR_FALSE,
     "tensorboard": TRUE_OR_FALSE,
     "noise_decay": (lambda v: is_number(v) and 0.0 <= v < 1.0, "must be a number in [0, 1)"),

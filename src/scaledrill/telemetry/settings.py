@@ -39,6 +39,7 @@ class TelemetryConfig:
     on_trigger: str = "stop"  # stop | continue: what a firing detector does; an incident record is written either way
     incident: IncidentConfig = field(default_factory=IncidentConfig)
     noise_every: int = 25  # fused path: every this many steps measure the noise scale on the per-worker path; 0 = never
+    noise_workers: int = 8  # a model only the loop path serves (recurrent layers): workers a noise step measures, drawn anew each time; 0 = all
     tensorboard: bool = False  # also write TensorBoard event files to RUN_DIR/tensorboard
 
 

@@ -25,6 +25,7 @@ from scaledrill.nn.ghost_bn import set_global_statistics, set_group_size
 from scaledrill.nn.stock import adapt_model
 from scaledrill.optim import build_optimizer, clip_flat, resolve_recipe, set_lr
 from scaledrill.sync import build_sync
+from scaledrill.sync.compress.seeds import mix
 from scaledrill.sync.path import grad_path
 from scaledrill.sync.summary import sync_summary
 from scaledrill.tasks.base import Task, build_task
@@ -41,6 +42,15 @@ from scaledrill.train.precision import Precision
 from scaledrill.train.signals import StopFlag
 
 DTYPES = {"float32": torch.float32, "float64": torch.float64}
+NOISE_SALT = 0x6E6F6973  # keeps the noise step's draw of workers apart from every other stream of train.seed
+
+
+def noise_sample(seed: int, step: int, W: int, k: int, hosted: range) -> list[int]:
+    """Indices among the `hosted` global workers of the k of W a noise step measures, drawn from
+    (seed, step) alone: the same global workers on every layout."""
+    draw = torch.Generator().manual_seed(mix(seed, step, NOISE_SALT))
+    chosen = range(W) if k >= W else torch.randperm(W, generator=draw)[:k].tolist()
+    return sorted(w - hosted.start for w in chosen if w in hosted)
 
 
 class Trainer:
@@ -88,12 +98,12 @@ class Trainer:
         # Read once: a config lookup costs tens of microseconds, several per step.
         tel = cfg.telemetry
         self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
+        self.noise_workers = tel.get("noise_workers", 8)
         self.clip_norm = cfg.optim.clip_norm
         self.blame = WorkerBlame(self) if tel.get("blame", True) else None  # whose batch, when a detector fires
         # Set by the run to its monitor's `would_fire`: the blame then copies the weights only on a
         # step a detector will fire on (a copy of the model every step is a tenth of a large model's step).
         self.alarm = None
-
 
     def _say(self, line: str) -> None:
         """One line for the user, from rank 0 of a run that shows its progress."""
@@ -104,6 +114,12 @@ class Trainer:
         V = self.layout.per_proc
         if getattr(self, "path", None) == "vmap":
             self.path = "loop"
+        if getattr(self, "path", None) == "fused" and self.noise_every and self.noise_workers:
+            W, k = self.layout.workers, self._sampled_count()
+            self._say(f"noise scale: per-worker gradients take the loop path ({reason}), so each noise-scale step "
+                      f"measures {k} of the {W} workers, drawn anew each step, one after another (an unbiased "
+                      f"estimate; telemetry.noise_workers=0 measures all, ~{W} small passes a step)")
+            return
         self._say(f"grads: the per-worker steps use the loop path for this run ({reason}); it runs the {V} workers of "
                   f"each process one after another, up to {V}x the forward/backward calls of vmap (an estimate)")
 
@@ -174,6 +190,17 @@ class Trainer:
             return False  # global statistics tie the workers together: no per-worker gradients to measure
         return self.path != "fused" or step % every == 0  # per-worker paths measure it for free
 
+    def _sampled_count(self) -> int:
+        return min(self.noise_workers, self.layout.workers)
+
+    def _noise_sample(self, step: int) -> list[int] | None:
+        """This process's share of the workers a noise step measures one at a time, or None where all
+        are measured at once (per-worker rules or vmap serve the model, or telemetry.noise_workers=0)."""
+        if self.grads.vmap_failure is None or not self.noise_workers:
+            return None
+        self.grads.announce_fallback()  # once per run
+        return noise_sample(self.cfg.train.seed, step, self.layout.workers, self._sampled_count(), self.workers)
+
     def _layers_due(self, step: int) -> bool:
         every = self.layer_every
         return bool(every) and step % every == 0
@@ -188,7 +215,10 @@ class Trainer:
         # A noise step on exact averaging needs each worker's |g|², not its gradient: the rules give
         # it from the fused pass once their first call has been checked against vmap (train/rows.py).
         norms_only = noise and self.path == "fused" and self.sync_is_exact and self.grads.rules_ready
-        path = "vmap" if noise and self.path == "fused" and not norms_only else self.path
+        # A model only the loop gives per-worker gradients for (recurrent layers) measures a sample of the
+        # workers, one at a time beside the fused pass: all W would cost ~W small passes (20x a step).
+        sampled = self._noise_sample(step) if noise and self.path == "fused" and not norms_only else None
+        path = "vmap" if noise and self.path == "fused" and not norms_only and sampled is None else self.path
         self.grads.step = step
         S = self.precision.loss_scale  # 1 unless the loss is scaled
         overlapped = self.overlap is not None and path == "fused" and not norms_only
@@ -201,11 +231,13 @@ class Trainer:
                 result = self.grads.fused(micro, scale * S, into=self.kept)
             else:
                 result = self.grads.compute(micro, scale * S, path)
+            if sampled is not None:  # an overlapped step's all-reduce is in flight meanwhile
+                result.worker_square = self.grads.sampled_square_norms(micro, scale * S, sampled)
         result.local = self.precision.widen(result.local, self.dtype)
         flag = getattr(self, "stop_flag", None)
         local_sq = 0.0
         if noise:  # before the sync may reuse `local`
-            local_sq = result.worker_square if norms_only else _square_norm(result.local)
+            local_sq = result.worker_square if result.worker_square is not None else _square_norm(result.local)
         shared = self._share_scalars([result.loss_sum, local_sq, float(flag.signum if flag else 0)], self.running_stats)
         exact = self._exact_sum(result.local) if noise and not self.sync_is_exact else None
         if overlapped:
@@ -215,7 +247,7 @@ class Trainer:
         W = self.layout.workers
         small_sq = big_sq = None
         if noise:
-            small_sq = float(scalars[1]) / W / S**2
+            small_sq = float(scalars[1]) / (self._sampled_count() if sampled is not None else W) / S**2
             big_sq = _square_norm(average if exact is None else exact / self.layout.workers) / S**2
 
         self.grads.write_grads(average)  # every .grad is a view of `average`

@@ -47,7 +47,7 @@ NO_VMAP = (torch.nn.RNNBase,)
 class StepGrads:
     local: torch.Tensor  # [1, n] (fused) or [V, n] (per-worker)
     loss_sum: float  # Σ of the process's scaled micro-losses, i.e. its share of the global mean loss
-    worker_square: float | None = None  # Σ over the process's workers of |g_w|², when asked without rows
+    worker_square: float | None = None  # Σ over the process's (or a sample of its) workers of |g_w|², when asked without rows
 
 
 class GradComputer:
@@ -239,6 +239,34 @@ class GradComputer:
             for n, t in ends.items():
                 named[n].copy_(t / self.V if t.is_floating_point() else t // self.V)
         return StepGrads(out, total)
+
+    def sampled_square_norms(self, micro: list[dict], scale: float, chosen: list[int]) -> float:
+        """Σ |g_v|² over the hosted workers `chosen` (indices among this process's V), one worker at
+        a time as `loop` computes them, the buffers left as they were: a noise step on a model whose
+        per-worker gradients only the loop gives (recurrent layers), for a sample of the workers
+        (telemetry.noise_workers) instead of all of them."""
+        if not chosen:
+            return 0.0
+        named = dict(self.model.named_buffers())
+        start = {n: named[n].detach().clone() for n in self.buffer_names}
+        row = self._accumulator(1)
+        views = self.flat.views(row[0])
+        split = [self._split(batch) for batch in micro]
+        total = torch.zeros((), dtype=torch.float64)
+        try:
+            for v in chosen:
+                for m, batch in enumerate(split):
+                    grads = torch.autograd.grad(self._sum_loss({k: t[v] for k, t in batch.items()}, scale), self.params)
+                    if m == 0:
+                        torch._foreach_copy_(views, grads)
+                    else:
+                        torch._foreach_add_(views, grads)
+                total += row.double().square().sum()
+        finally:
+            with torch.no_grad():
+                for n, t in start.items():
+                    named[n].copy_(t)
+        return float(total)
 
     def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:
         return getattr(self, path)(micro, scale)
