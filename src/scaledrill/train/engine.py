@@ -33,6 +33,7 @@ from scaledrill.tasks.batches import cast_batch, check_finite
 from scaledrill.tasks.sampler import make_sampler
 from scaledrill.telemetry.layers import layer_stats
 from scaledrill.telemetry.monitor import Monitor, StepRecord
+from scaledrill.telemetry.settings import DEFAULTS as TELEMETRY_DEFAULTS
 from scaledrill.train import checkpoint
 from scaledrill.train.blame import WorkerBlame
 from scaledrill.train.grads import GradComputer, flatten_params
@@ -98,7 +99,7 @@ class Trainer:
         # Read once: a config lookup costs tens of microseconds, several per step.
         tel = cfg.telemetry
         self.noise_every, self.layer_every = tel.noise_every, tel.layer_every
-        self.noise_workers = tel.get("noise_workers", 8)
+        self.noise_workers = tel.get("noise_workers", TELEMETRY_DEFAULTS.noise_workers)
         self.clip_norm = cfg.optim.clip_norm
         self.blame = WorkerBlame(self) if tel.get("blame", True) else None  # whose batch, when a detector fires
         # Set by the run to its monitor's `would_fire`: the blame then copies the weights only on a

@@ -224,15 +224,7 @@ class GradComputer:
         total = 0.0
         split = [self._split(batch) for batch in micro]
         for v in range(self.V):
-            with torch.no_grad():
-                for n, t in start.items():
-                    named[n].copy_(t)
-            views = self.flat.views(out[v])
-            for batch in split:
-                one = {k: t[v] for k, t in batch.items()}
-                value = self._sum_loss(one, scale)
-                torch._foreach_add_(views, torch.autograd.grad(value, self.params))
-                total += float(value.detach())
+            total += self._one_worker(split, v, scale, out[v], start)
             for n in ends:
                 ends[n] += named[n].detach()
         with torch.no_grad():
@@ -240,33 +232,39 @@ class GradComputer:
                 named[n].copy_(t / self.V if t.is_floating_point() else t // self.V)
         return StepGrads(out, total)
 
+    def _one_worker(self, split: list[dict], v: int, scale: float, into: torch.Tensor, start: dict) -> float:
+        """Hosted worker v's gradient added into the flat row `into`, the buffers first set to
+        `start` (every worker begins from the step's state); returns its scaled loss sum."""
+        named = dict(self.model.named_buffers())
+        with torch.no_grad():
+            for n, t in start.items():
+                named[n].copy_(t)
+        views, total = self.flat.views(into), 0.0
+        for batch in split:
+            value = self._sum_loss({k: t[v] for k, t in batch.items()}, scale)
+            torch._foreach_add_(views, torch.autograd.grad(value, self.params))
+            total += float(value.detach())
+        return total
+
     def sampled_square_norms(self, micro: list[dict], scale: float, chosen: list[int]) -> float:
-        """Σ |g_v|² over the hosted workers `chosen` (indices among this process's V), one worker at
-        a time as `loop` computes them, the buffers left as they were: a noise step on a model whose
-        per-worker gradients only the loop gives (recurrent layers), for a sample of the workers
+        """Σ |g_v|² over the hosted workers `chosen` (indices among this process's V), each computed
+        as `loop` does, the buffers left as they were: a noise step on a model whose per-worker
+        gradients only the loop gives (recurrent layers), for a sample of the workers
         (telemetry.noise_workers) instead of all of them."""
-        if not chosen:
-            return 0.0
         named = dict(self.model.named_buffers())
         start = {n: named[n].detach().clone() for n in self.buffer_names}
-        row = self._accumulator(1)
-        views = self.flat.views(row[0])
-        split = [self._split(batch) for batch in micro]
-        total = torch.zeros((), dtype=torch.float64)
+        row, split = self._accumulator(1)[0], [self._split(batch) for batch in micro]
+        total = 0.0
         try:
             for v in chosen:
-                for m, batch in enumerate(split):
-                    grads = torch.autograd.grad(self._sum_loss({k: t[v] for k, t in batch.items()}, scale), self.params)
-                    if m == 0:
-                        torch._foreach_copy_(views, grads)
-                    else:
-                        torch._foreach_add_(views, grads)
-                total += row.double().square().sum()
+                row.zero_()
+                self._one_worker(split, v, scale, row, start)
+                total += float(row.double().square().sum())
         finally:
             with torch.no_grad():
                 for n, t in start.items():
                     named[n].copy_(t)
-        return float(total)
+        return total
 
     def compute(self, micro: list[dict], scale: float, path: str) -> StepGrads:
         return getattr(self, path)(micro, scale)
