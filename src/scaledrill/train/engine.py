@@ -213,15 +213,18 @@ class Trainer:
             self.blame.before(step, micro)
         scale = self.layout.workers / self._global_count(micro)
         noise = self._noise_due(step)
+        self.grads.step = step  # keys the dropout masks
+        S = self.precision.loss_scale  # 1 unless the loss is scaled
+        if noise and not self.grads.settled:  # the per-worker route is chosen before this step takes one
+            with self.precision.autocast():
+                self.grads.settle(micro, scale * S)
         # A noise step on exact averaging needs each worker's |g|², not its gradient: the rules give
-        # it from the fused pass once their first call has been checked against vmap (train/rows.py).
+        # it from the fused pass once their trial agreed with vmap (GradComputer.settle).
         norms_only = noise and self.path == "fused" and self.sync_is_exact and self.grads.rules_ready
         # A model only the loop gives per-worker gradients for (recurrent layers) measures a sample of the
         # workers, one at a time beside the fused pass: all W would cost ~W small passes (20x a step).
         sampled = self._noise_sample(step) if noise and self.path == "fused" and not norms_only else None
         path = "vmap" if noise and self.path == "fused" and not norms_only and sampled is None else self.path
-        self.grads.step = step
-        S = self.precision.loss_scale  # 1 unless the loss is scaled
         overlapped = self.overlap is not None and path == "fused" and not norms_only
         with self.precision.autocast():
             if norms_only:

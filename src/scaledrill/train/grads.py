@@ -11,8 +11,8 @@ global token count and never as a mean of micro-batch means.
   normalization (group = b) keeps BatchNorm statistics per worker.
 - vmap: per-worker gradients; returns [V, n]. When every module holding
   parameters has a per-worker rule (rows.py: Linear, LayerNorm, Embedding,
-  Conv2d, GhostBatchNorm), the rows come from one fused forward/backward, after
-  the first call has checked them against torch.func.vmap; otherwise by vmap,
+  Conv2d, GhostBatchNorm), the rows come from one fused forward/backward, once
+  a trial has checked them against torch.func.vmap (settle); otherwise by vmap,
   where BatchNorm buffers go in batched (one copy per worker) and come back as
   their mean.
 - loop: the same [V, n] one worker at a time, for modules vmap cannot handle.
@@ -68,10 +68,10 @@ class GradComputer:
         self.step = 0  # the optimizer step, which keys the dropout masks
         self.announced = False
         self.on_fallback = None  # called once with the reason when vmap fails and loop takes over
-        # Per-worker rows from one fused pass: None when a module has no rule or the first call's check failed.
+        # Per-worker rows from one fused pass: None when a module has no rule or the trial failed.
         self.rule_cause = rule_cause(model)
         self.rules = RuleRows(model, self.params, workers_per_proc) if self.rule_cause is None else None
-        self.rules_checked = False
+        self.settled = False  # which per-worker route serves the model is decided (settle)
         self.vmap_failure = next((f"{type(m).__name__} has no per-worker (vmap) kernel" for m in model.modules()
                                   if isinstance(m, NO_VMAP)), None)
         self.accum_dtype = None  # dtype the micro-batch gradients are summed in; None = the parameters' (train/precision.py)
@@ -115,8 +115,8 @@ class GradComputer:
 
     @property
     def rules_ready(self) -> bool:
-        """The per-worker rules serve this model (their first call agreed with vmap)."""
-        return self.rules is not None and self.rules_checked
+        """The per-worker rules serve this model (settled: their trial agreed with vmap)."""
+        return self.rules is not None and self.settled
 
     def kept_buffer(self) -> "KeptBuffer":
         """A [1, n] gradient buffer for `fused(into=...)`, in the dtype the micro-steps are summed in."""
@@ -139,18 +139,38 @@ class GradComputer:
 
     def vmap(self, micro: list[dict], scale: float) -> StepGrads:
         """Per-worker gradients by the rules of rows.py, by torch.func.vmap, or by loop once vmap has failed on this model."""
-        if self.rules is not None and self.rules_checked:
+        self.settle(micro, scale)
+        if self.rules is not None:
             rows, total = self.rules.compute(self.model, self._forward_sum(scale), micro, self.accum_dtype or self.params[0].dtype)
             return StepGrads(rows, total)
-        if self.rules is not None:
-            return self._check_rules(micro, scale)
         return self._per_worker(micro, scale)
 
     def _forward_sum(self, scale: float):
         return lambda batch: self._sum_loss(batch, scale)
 
-    def _check_rules(self, micro: list[dict], scale: float) -> StepGrads:
-        """First call: rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
+    def settle(self, micro: list[dict], scale: float) -> None:
+        """Decide once, before a step uses per-worker gradients, which route serves this model: the
+        rules (checked against vmap on this step's batch), vmap, or loop (vmap failed on it). The
+        trial's results are thrown away and the buffers put back, so which route a step takes, and
+        so its bits, depend on the model alone and not on the step a run started from: a resumed
+        run repeats the uninterrupted one exactly (the first step used to keep the trial's result)."""
+        if self.settled:
+            return
+        named = dict(self.model.named_buffers())
+        start = {n: b.detach().clone() for n, b in named.items()}
+        try:
+            if self.rules is not None:
+                self._check_rules(micro, scale)
+            elif self.vmap_failure is None:
+                self._try_vmap(micro, scale)
+        finally:
+            with torch.no_grad():
+                for n, b in named.items():
+                    b.copy_(start[n])
+            self.settled = True
+
+    def _check_rules(self, micro: list[dict], scale: float) -> None:
+        """Rows by the rules, then by vmap (or loop) from the same buffers; keep the rules if they agree."""
         named = dict(self.model.named_buffers())
         start = {n: b.detach().clone() for n, b in named.items()}
         try:
@@ -167,14 +187,16 @@ class GradComputer:
             self.rule_cause = "its rows differ from vmap's (a parameter used outside its module, or samples not along dim 0)"
         if self.rule_cause is not None:
             self.rules = None
-        self.rules_checked = True
-        return reference
 
     def _per_worker(self, micro: list[dict], scale: float) -> StepGrads:
-        if self.vmap_failure is not None:
-            result = self.loop(micro, scale)
+        result = self._try_vmap(micro, scale) if self.vmap_failure is None else None
+        if result is None:
+            result = self.loop(micro, scale)  # a model that fails here too is named by forward_loss
             self.announce_fallback()
-            return result
+        return result
+
+    def _try_vmap(self, micro: list[dict], scale: float) -> StepGrads | None:
+        """vmap's result, or None with the reason kept in vmap_failure: this run then loops for good."""
         try:
             with warnings.catch_warnings():  # torch's note that a kernel runs unbatched under vmap: slower, still exact
                 warnings.filterwarnings("ignore", message="There is a performance drop")
@@ -182,10 +204,9 @@ class GradComputer:
         except ScaledrillError:
             raise
         except Exception as err:  # noqa: BLE001 - vmap's limits show up as many kinds of error
-            result = self.loop(micro, scale)  # a model that fails here too is named by forward_loss
+            key_samples(self.dropouts, None)
             self.vmap_failure = f"torch.func.vmap failed: {type(err).__name__}: {str(err).splitlines()[0][:200]}"
-            self.announce_fallback()
-            return result
+            return None
 
     def announce_fallback(self) -> None:
         if not self.announced and self.on_fallback is not None:
